@@ -109,8 +109,8 @@ class StepChain(ChainBase):
                 v = _step(v, p, q, r)
                 k += 1
             out[j] = v[: threshold + 1].sum()
-        return PassageCurve(steps.astype(float), np.clip(out, 0, 1), np.full(steps.size, 4 * np.finfo(float).eps * max(1, steps.max()))  # round-off only: no truncation,
-                            start, threshold)
+        roundoff = np.full(steps.size, 4 * np.finfo(float).eps * max(1, steps.max()))  # no truncation here
+        return PassageCurve(steps.astype(float), np.clip(out, 0, 1), roundoff, start, threshold)
 
     def absorption_probability(self, sizes: np.ndarray | None = None) -> np.ndarray:
         """P(reach 0 before N | start) on a finite chain whose top N is absorbing (p_N = q_N = 0).
