@@ -83,3 +83,61 @@ class CountsFileError(InputError):
         if hint:
             text += f" — {hint}"
         self.args = (text,)
+
+
+class CountValueError(InputError):
+    """Times or counts handed to the likelihood are not usable (not sorted, negative,
+    not whole numbers, shapes that do not match).
+
+    Attributes:
+        site: index of the series (0-based), or None.
+        time: the offending survey time, or None.
+        (and source, row, column, hint from InputError)
+    """
+
+    def __init__(self, message: str, *, site: int | None = None, time: float | None = None,
+                 hint: str | None = None) -> None:
+        self.site = site
+        self.time = time
+        super().__init__(message, hint=hint)
+
+
+class ReplicateMismatchError(CountValueError):
+    """Exact counts (no detection model) but replicate surveys at one time disagree."""
+
+
+class InvalidRatesError(InputError):
+    """Birth or death rates given to the likelihood are unusable.
+
+    Attributes:
+        name: "birth", "death" or "detection".
+        size: the first offending size, or None.
+        value: the offending value, or None.
+    """
+
+    def __init__(self, message: str, *, name: str | None = None, size: int | None = None,
+                 value: float | None = None) -> None:
+        self.name = name
+        self.size = size
+        self.value = value
+        super().__init__(message)
+
+
+class LikelihoodUnderflowError(InputError):
+    """A transition that is possible has a probability too small for double precision
+    (or too small to bound at the requested tolerance), even on the whole size range.
+
+    Attributes:
+        site: index of the series, or None.
+        time: end time of the transition, or None.
+        start, end: the counts (or None with a detection model).
+    """
+
+    def __init__(self, message: str, *, site: int | None = None, time: float | None = None,
+                 start: int | None = None, end: int | None = None) -> None:
+        self.site = site
+        self.time = time
+        self.start = start
+        self.end = end
+        super().__init__(message, hint="check the rates (a far-off parameter value) or the counts "
+                                       "(a typing error); a detection model absorbs counting error")
