@@ -75,7 +75,7 @@ class BirthDeathChain(ChainBase):
         return res.rows[0]
 
     def extinction_curve(self, start: int, times: np.ndarray, threshold: int = 0, *,
-                         tol: float = 1e-10) -> PassageCurve:
+                         tol: float = 1e-10, window_top: int | None = None) -> PassageCurve:
         """P(size first reaches <= ``threshold`` by time t | ``start`` at time 0), per horizon.
 
         threshold = 0 gives the extinction curve; k > 0 a quasi-extinction curve.
@@ -85,6 +85,8 @@ class BirthDeathChain(ChainBase):
             times: horizons, ascending, >= 0.
             threshold: quasi-extinction threshold k (0 <= k).
             tol: wanted bound on the absolute error of each probability.
+            window_top: first guess of the largest size paths need (e.g. a high quantile of
+                the quasi-stationary law); the range is widened until the bound holds.
 
         Returns:
             PassageCurve (probability, error_bound per horizon).
@@ -105,6 +107,8 @@ class BirthDeathChain(ChainBase):
         up, down = absorbing_rates(self.birth, self.death, threshold)
         # cut the top where paths rarely go; widen until the escaped mass is below tol
         margin = max(16, start // 4)
+        if window_top is not None:
+            margin = max(margin, int(window_top) - start)
         while True:
             hi = min(self.cap, start + margin)
             res = transition_rows(up, down, np.array([start], dtype=np.int64), times, lo=threshold, hi=hi)

@@ -17,15 +17,10 @@ a sum of positive terms evaluated in log space.
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import logsumexp
 
+from .logspace import suffix_log_sum_exp as _suffix_logsumexp
 from .rates import Rates
 from .series import SeriesSum, sum_log_series
-
-
-def _suffix_logsumexp(a: np.ndarray) -> np.ndarray:
-    """log Σ_{j>=i} exp(a_j) for every i."""
-    return np.logaddexp.accumulate(a[::-1])[::-1]
 
 
 def _log_rho(up: np.ndarray, down: np.ndarray, base: int = 0) -> np.ndarray:

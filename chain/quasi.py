@@ -21,10 +21,9 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import eigh_tridiagonal
-from scipy.special import logsumexp
 
 from .errors import ChainError
-from .extinction import _suffix_logsumexp
+from .logspace import log_sum_exp as logsumexp, suffix_log_sum_exp as _suffix_logsumexp
 
 
 @dataclass(frozen=True)

@@ -12,8 +12,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-from scipy.special import logsumexp
 
+from .logspace import log_sum_exp as logsumexp
 from .rates import MAX_UNBOUNDED_SIZE
 
 

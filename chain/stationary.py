@@ -12,8 +12,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.special import logsumexp
 
+from .logspace import log_sum_exp as logsumexp
 from .rates import Rates
 from .series import sum_log_series
 

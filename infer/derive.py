@@ -1,0 +1,299 @@
+"""Push-forward: every retained posterior draw becomes a chain and goes through the solvers.
+
+For each draw and scenario: per-capita birth and death rates by size; the stationary
+distribution where one exists (decided on the family's formula continued beyond the cap)
+and the probability mass it puts above the cap; the quasi-stationary distribution and
+its decay rate; the mean time to extinction from each site's last count; extinction and
+quasi-extinction curves over the horizons; and the IUCN criterion E category.
+
+Results are an xarray Dataset with dims (scenario, chain, draw, size, site, threshold,
+horizon), written to derived.nc.
+"""
+from __future__ import annotations
+
+import math
+import os
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+import xarray as xr
+
+from chain import BirthDeathChain, ChainError
+from .scenarios import BASELINE, Scenario
+
+#: IUCN (2012) Red List Categories and Criteria v3.1, criterion E, in order of severity.
+CATEGORIES = ("below VU", "VU", "EN", "CR")
+
+
+def iucn_horizons(generation_time: float | None) -> dict[str, float]:
+    """Criterion E horizons in years: CR max(10 y, 3 G), EN max(20 y, 5 G), both at most 100 y; VU 100 y.
+
+    IUCN (2012) Red List Categories and Criteria v3.1, criterion E. Without a generation
+    time the shortest horizons (10 and 20 years) are used, which is right when G <= 3.3 years.
+    """
+    g = 0.0 if generation_time is None else float(generation_time)
+    return {"CR": min(100.0, max(10.0, 3 * g)), "EN": min(100.0, max(20.0, 5 * g)), "VU": 100.0}
+
+
+def iucn_category(p_cr: np.ndarray, p_en: np.ndarray, p_vu: np.ndarray) -> np.ndarray:
+    """Category code per draw (index into CATEGORIES): CR if P >= 0.5 at the CR horizon,
+    EN if P >= 0.2 at the EN horizon, VU if P >= 0.1 within 100 years (IUCN 2012, criterion E)."""
+    code = np.zeros(np.shape(p_cr), dtype=np.int8)
+    code = np.where(p_vu >= 0.1, 1, code)
+    code = np.where(p_en >= 0.2, 2, code)
+    code = np.where(p_cr >= 0.5, 3, code)
+    return code.astype(np.int8)
+
+
+@dataclass(frozen=True)
+class PushForwardSpec:
+    """What to compute for every draw.
+
+    Attributes:
+        cap: size cap N of the fitted chains.
+        sites: site names; starts: each site's last observed count (in site order).
+        horizons: extinction-curve horizons (time units of the data), ascending.
+        thresholds: quasi-extinction thresholds (0 = extinction).
+        generation_time: years per generation for criterion E (None: shortest horizons).
+        tol: error bound wanted on each extinction probability.
+    """
+
+    cap: int
+    sites: tuple[str, ...]
+    starts: tuple[int, ...]
+    horizons: tuple[float, ...]
+    thresholds: tuple[int, ...] = (0,)
+    generation_time: float | None = None
+    tol: float = 1e-10
+
+
+def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray], scenario: Scenario,
+                           cap: int) -> tuple[bool, float, np.ndarray | None]:
+    """Existence of the stationary law of the family continued beyond the cap, the mass it puts
+    above the cap, and its pmf on 0..cap (renormalised within the cap) when it exists."""
+
+    def rates(n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        sizes = np.arange(int(n.max()) + 1)
+        b, d = family.numpy_rates(params, sizes)
+        b, d = scenario.apply(b[0], d[0], sizes)
+        return b[n], d[n]
+
+    # one evaluation of the formula well past the cap serves every truncation the series tries
+    reach = max(256, 4 * cap)
+    table = rates(np.arange(reach + 1))
+
+    def cached(n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        if int(n.max()) <= reach:
+            return table[0][n], table[1][n]
+        return rates(n)
+
+    chain = BirthDeathChain(lambda n: cached(n)[0], lambda n: cached(n)[1])
+    st = chain.stationary()
+    if not st.exists:
+        return False, float("nan"), None
+    above = float(st.pmf[cap + 1:].sum()) if st.pmf.size > cap + 1 else 0.0
+    pmf = np.zeros(cap + 1)
+    pmf[: min(cap + 1, st.pmf.size)] = st.pmf[: cap + 1]  # beyond the series' end the mass is below its bound
+    return True, above + st.tail_bound, pmf
+
+
+def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec) -> dict[str, Any]:
+    """All derived quantities of one chain (capped rates over 0..cap)."""
+    out: dict[str, Any] = {}
+    chain = BirthDeathChain(birth, death)
+    try:
+        qs = chain.quasi_stationary()
+        out["quasi_pmf"], out["quasi_decay_rate"], out["quasi_mean"] = qs.pmf, qs.decay_rate, qs.mean
+    except ChainError:
+        out["quasi_pmf"] = np.full(spec.cap + 1, np.nan)
+        out["quasi_decay_rate"] = out["quasi_mean"] = np.nan
+    with np.errstate(over="ignore"):
+        out["log10_mean_time"] = chain.mean_time_to_extinction(np.array(spec.starts), log=True) / math.log(10)
+    times = np.asarray(spec.horizons, dtype=float)
+    prob = np.empty((len(spec.starts), len(spec.thresholds), times.size))
+    bound = np.empty_like(prob)
+    b0 = birth.copy()
+    b0[0] = 0.0  # extinction curves: first passage to the threshold, with 0 absorbing
+    absorbing = BirthDeathChain(b0, death)
+    top = None
+    if np.isfinite(out["quasi_decay_rate"]):
+        # paths rarely go beyond the far upper tail of the quasi-stationary law: start the window there
+        tail = np.cumsum(out["quasi_pmf"][::-1])[::-1]
+        top = int(np.searchsorted(-tail, -1e-13)) + 5
+    for i, start in enumerate(spec.starts):
+        for j, k in enumerate(spec.thresholds):
+            curve = absorbing.extinction_curve(int(start), times, threshold=int(k), tol=spec.tol,
+                                               window_top=top)
+            prob[i, j], bound[i, j] = curve.probability, curve.error_bound
+    out["extinction_probability"], out["extinction_error_bound"] = prob, bound
+    return out
+
+
+def _work(args: tuple) -> list[dict[str, Any]]:
+    family, params_list, scenario, spec = args
+    results = []
+    sizes = np.arange(spec.cap + 1)
+    for params in params_list:
+        b, d = family.numpy_rates(params, sizes)
+        b, d = scenario.apply(b[0], d[0], sizes)
+        res = _one_draw(b, d, spec)
+        exists, above, pmf = _stationary_beyond_cap(family, params, scenario, spec.cap)
+        res["stationary_exists"] = exists
+        res["stationary_mass_above_cap"] = above
+        res["stationary_pmf"] = pmf if pmf is not None else np.full(spec.cap + 1, np.nan)
+        res["birth"], res["death"] = b, d
+        results.append(res)
+    return results
+
+
+def _draw_params(posterior: xr.Dataset, names: Sequence[str]) -> tuple[list[dict[str, np.ndarray]], int, int]:
+    n_chain, n_draw = posterior.sizes["chain"], posterior.sizes["draw"]
+    flat = {}
+    for name in names:
+        if name in posterior:
+            v = posterior[name].transpose("chain", "draw", ...).values
+            flat[name] = v.reshape((n_chain * n_draw,) + v.shape[2:])
+    params = [{k: v[i:i + 1] for k, v in flat.items()} for i in range(n_chain * n_draw)]
+    return params, n_chain, n_draw
+
+
+def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
+                 scenarios: Sequence[Scenario] = (BASELINE,), *, workers: int | None = None,
+                 progress: bool = False) -> xr.Dataset:
+    """Derived quantities for every posterior draw and scenario.
+
+    Args:
+        family: a rate family with ``numpy_rates(draws, sizes)`` and ``parameters``.
+        posterior: the posterior group (dims chain, draw, ...).
+        spec: what to compute (cap, sites and their last counts, horizons, thresholds).
+        scenarios: baseline first, then the scenarios; all use the same draws.
+        workers: processes to use (default: the machine's cores, at most 2 per 1000 draws).
+        progress: show a progress bar.
+
+    Returns:
+        xarray Dataset (see the module docstring for variables and dims).
+    """
+    names = list(getattr(family, "parameters", [])) + [s.name for s in getattr(family, "free_parameters", [])]
+    params, n_chain, n_draw = _draw_params(posterior, list(dict.fromkeys(names)) or list(posterior.data_vars))
+    n_total = len(params)
+    if workers is None:
+        workers = max(1, min(os.cpu_count() or 1, math.ceil(n_total / 500)))
+    chunk = max(1, math.ceil(n_total / (4 * workers)))
+    jobs = [(family, params[i:i + chunk], sc, spec) for sc in scenarios for i in range(0, n_total, chunk)]
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+        bar = tqdm(total=len(jobs), desc="push-forward", unit="chunk")
+    results: list[list[dict[str, Any]]] = []
+    if workers == 1:
+        for job in jobs:
+            results.append(_work(job))
+            if bar:
+                bar.update()
+    else:
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            for res in pool.map(_work, jobs):
+                results.append(res)
+                if bar:
+                    bar.update()
+    if bar:
+        bar.close()
+    flat = [r for chunk_res in results for r in chunk_res]
+    n_sc = len(scenarios)
+
+    def gather(key: str) -> np.ndarray:
+        arr = np.stack([np.asarray(r[key]) for r in flat])
+        return arr.reshape((n_sc, n_chain, n_draw) + arr.shape[1:])
+
+    sizes = np.arange(spec.cap + 1)
+    birth, death = gather("birth"), gather("death")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        per_birth = np.where(sizes > 0, (birth - birth[..., :1]) / sizes, np.nan)
+        per_death = np.where(sizes > 0, death / sizes, np.nan)
+    prob = gather("extinction_probability")  # (sc, chain, draw, site, threshold, horizon)
+    coords = {"scenario": [s.name for s in scenarios], "chain": posterior["chain"].values,
+              "draw": posterior["draw"].values, "size": sizes, "site": list(spec.sites),
+              "threshold": list(spec.thresholds), "horizon": list(spec.horizons)}
+    dims_s = ("scenario", "chain", "draw")
+    ds = xr.Dataset(
+        {
+            "birth_per_capita": (dims_s + ("size",), per_birth),
+            "death_per_capita": (dims_s + ("size",), per_death),
+            "immigration": (dims_s, birth[..., 0]),
+            "stationary_exists": (dims_s, gather("stationary_exists").astype(bool)),
+            "stationary_pmf": (dims_s + ("size",), gather("stationary_pmf")),
+            "stationary_mass_above_cap": (dims_s, gather("stationary_mass_above_cap")),
+            "quasi_pmf": (dims_s + ("size",), gather("quasi_pmf")),
+            "quasi_decay_rate": (dims_s, gather("quasi_decay_rate")),
+            "quasi_mean": (dims_s, gather("quasi_mean")),
+            "log10_mean_time_to_extinction": (dims_s + ("site",), gather("log10_mean_time")),
+            "extinction_probability": (dims_s + ("site", "threshold", "horizon"), prob),
+            "extinction_error_bound": (dims_s + ("site", "threshold", "horizon"), gather("extinction_error_bound")),
+            # sites share rates but are otherwise independent: all are extinct only if each is
+            "extinction_probability_all_sites": (dims_s + ("threshold", "horizon"), prob.prod(axis=3)),
+        },
+        coords=coords,
+    )
+    pmf = ds["stationary_pmf"]
+    ds["stationary_mean"] = (pmf * ds["size"]).sum("size", skipna=False)
+    hz = iucn_horizons(spec.generation_time)
+    ext = ds["extinction_probability_all_sites"].sel(threshold=0 if 0 in spec.thresholds else spec.thresholds[0])
+    p = {k: ext.interp(horizon=v).values if v not in spec.horizons else ext.sel(horizon=v).values
+         for k, v in hz.items()}
+    ds["iucn_category"] = (dims_s, iucn_category(p["CR"], p["EN"], p["VU"]))
+    ds["iucn_category"].attrs.update(codes=", ".join(f"{i}={c}" for i, c in enumerate(CATEGORIES)),
+                                     horizons_years=", ".join(f"{k}={v:g}" for k, v in hz.items()),
+                                     source="IUCN (2012) Red List Categories and Criteria v3.1, criterion E")
+    ds.attrs.update(cap=spec.cap, generation_time=-1.0 if spec.generation_time is None else spec.generation_time,
+                    tol=spec.tol, scenarios=str([s.as_dict() for s in scenarios]))
+    return ds
+
+
+def horizons_with_iucn(horizons: Sequence[float], generation_time: float | None) -> tuple[float, ...]:
+    """The user's horizons together with the criterion E horizons, sorted, without duplicates."""
+    return tuple(sorted(set(float(h) for h in horizons) | set(iucn_horizons(generation_time).values())))
+
+
+def summarise(ds: xr.Dataset, *, level: float = 0.9) -> dict[str, Any]:
+    """Posterior summaries (mean, equal-tailed interval) of the derived scalars, per scenario.
+
+    Args:
+        ds: the push-forward Dataset.
+        level: credible level of the equal-tailed interval.
+
+    Returns:
+        nested dict {scenario: {quantity: {...}}} ready for summary.json.
+    """
+    lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
+
+    def stats(da: xr.DataArray) -> dict[str, float]:
+        v = np.asarray(da.values, dtype=float).ravel()
+        v = v[np.isfinite(v)]
+        if v.size == 0:
+            return {"mean": None, "q_lo": None, "q50": None, "q_hi": None, "n": 0}
+        return {"mean": float(v.mean()), "q_lo": float(np.quantile(v, lo_q)), "q50": float(np.median(v)),
+                "q_hi": float(np.quantile(v, hi_q)), "n": int(v.size)}
+
+    out: dict[str, Any] = {"credible_level": level}
+    for sc in ds["scenario"].values:
+        d = ds.sel(scenario=sc)
+        entry: dict[str, Any] = {
+            "stationary_exists_probability": float(d["stationary_exists"].mean()),
+            "stationary_mean": stats(d["stationary_mean"].where(d["stationary_exists"])),
+            "quasi_stationary_mean": stats(d["quasi_mean"]),
+            "quasi_decay_rate": stats(d["quasi_decay_rate"]),
+            "log10_mean_time_to_extinction": {str(s): stats(d["log10_mean_time_to_extinction"].sel(site=s))
+                                              for s in d["site"].values},
+            "extinction_probability_all_sites": {
+                f"threshold={int(k)}": {f"{float(h):g}": stats(d["extinction_probability_all_sites"].sel(threshold=k, horizon=h))
+                                        for h in d["horizon"].values}
+                for k in d["threshold"].values},
+            "iucn_category_probability": {c: float((d["iucn_category"] == i).mean()) for i, c in enumerate(CATEGORIES)},
+            "max_extinction_error_bound": float(d["extinction_error_bound"].max()),
+            "max_stationary_mass_above_cap": float(d["stationary_mass_above_cap"].max(skipna=True))
+            if bool(d["stationary_exists"].any()) else None,
+        }
+        out[str(sc)] = entry
+    return out
