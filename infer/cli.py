@@ -1,0 +1,193 @@
+"""The ``tallyfit`` command line.
+
+Exit codes: 0 ok; 1 a check failed (convergence diagnostics, audit); 2 bad input (the
+message names the file, row and column); 130 interrupted.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import Sequence
+
+EXIT_OK, EXIT_CHECK, EXIT_INPUT, EXIT_INTERRUPT = 0, 1, 2, 130
+REPO = Path(__file__).resolve().parent.parent
+DEMO_COUNTS = REPO / "example_counts" / "heron_fen.csv"
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="tallyfit", description=(
+        "Fit birth–death processes to population head counts and turn the posterior into "
+        "extinction risk, size distributions and criterion E categories."))
+    p.add_argument("--quiet", action="store_true", help="no progress bars or progress messages")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def fit_options(sp: argparse.ArgumentParser) -> None:
+        sp.add_argument("--config", type=Path, help="RUN.toml with [fit], [derive], [priors.*], [scenario.*] tables")
+        sp.add_argument("--chains", type=int, help="MCMC chains (default 4)")
+        sp.add_argument("--draws", type=int, help="draws kept per chain (default 1000)")
+        sp.add_argument("--tune", type=int, help="tuning steps per chain (default 1000)")
+        sp.add_argument("--seed", type=int, help="random seed (same seed, data and settings: same results)")
+        sp.add_argument("--max-size", type=int, dest="max_size", help="size cap N (default: chosen from the data)")
+        sp.add_argument("--detection", help='detection probability: a number in (0, 1], or "estimate" '
+                                            "(needs replicate surveys); default: exact counts")
+        sp.add_argument("--generation-time", type=float, dest="generation_time",
+                        help="generation time in years, for the criterion E horizons")
+        imm = sp.add_mutually_exclusive_group()
+        imm.add_argument("--immigration", dest="immigration", action="store_true", default=None,
+                         help="include an immigration rate (default)")
+        imm.add_argument("--no-immigration", dest="immigration", action="store_false",
+                         help="closed population: no immigration, so 0 is absorbing")
+        sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+
+    sp = sub.add_parser("demo", help="fit the bundled demo data and write a report")
+    sp.add_argument("--out", type=Path, default=Path("demo_run"), help="run folder (default demo_run)")
+    sp.add_argument("--seed", type=int, help="random seed")
+    sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+
+    sp = sub.add_parser("fit", help="fit a counts CSV and write a run folder with report")
+    sp.add_argument("counts", type=Path, help="counts CSV: columns time, count [, site, survey]")
+    sp.add_argument("--rates", help="rate family: linear, logistic, allee or per-size (default logistic)")
+    sp.add_argument("--out", type=Path, required=True, help="run folder to write")
+    fit_options(sp)
+
+    sp = sub.add_parser("solve", help="derived quantities for given rates (no data)")
+    sp.add_argument("rates", type=Path, help="RATES.toml: a family with [parameters] and cap, or birth/death arrays")
+    sp.add_argument("--json", action="store_true", help="print JSON instead of text")
+    sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+
+    sp = sub.add_parser("simulate", help="exact simulated counts from given rates")
+    sp.add_argument("rates", type=Path, help="RATES.toml (as for solve; 'start' is the size at time 0)")
+    sp.add_argument("--times", type=float, nargs="+", required=True, help="census times")
+    sp.add_argument("--out", type=Path, required=True, help="counts CSV to write")
+    sp.add_argument("--sites", type=int, default=1, help="independent sites sharing the rates")
+    sp.add_argument("--seed", type=int, default=None, help="random seed")
+    sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+
+    sp = sub.add_parser("audit", help="re-check a run folder; exit 1 if anything fails")
+    sp.add_argument("run", type=Path, help="run folder")
+    sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+    return p
+
+
+def _say(args: argparse.Namespace, text: str) -> None:
+    if not args.quiet:
+        print(text, flush=True)
+
+
+def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettings | None" = None) -> int:
+    from .config import RunSettings, load_settings
+    from .pipeline import run_pipeline
+
+    settings = load_settings(getattr(args, "config", None), base)
+    detection = getattr(args, "detection", None)
+    if detection is not None and detection != "estimate":
+        try:
+            detection = float(detection)
+        except ValueError:
+            from .errors import InputError
+            raise InputError(f'--detection must be a number in (0, 1] or "estimate", got {detection!r}') from None
+    settings = settings.with_options(rates=getattr(args, "rates", None), chains=getattr(args, "chains", None),
+                                     draws=getattr(args, "draws", None), tune=getattr(args, "tune", None),
+                                     seed=getattr(args, "seed", None), max_size=getattr(args, "max_size", None),
+                                     detection=detection, immigration=getattr(args, "immigration", None),
+                                     generation_time=getattr(args, "generation_time", None))
+    outcome = run_pipeline(counts, settings, out, progress=not args.quiet,
+                           log=(lambda s: None) if args.quiet else (lambda s: print(s, flush=True)))
+    for w in outcome.warnings:
+        print(f"WARNING: {w}", file=sys.stderr)
+    _say(args, f"report: {outcome.folder / 'report.html'}")
+    ext = outcome.headline.get("extinction", {})
+    if ext:
+        _say(args, "posterior mean probability that every site is extinct within: " +
+             ", ".join(f"{h} time units {p:.3g}" for h, p in ext.items() if p is not None))
+    iucn = outcome.headline.get("iucn", {})
+    if iucn:
+        _say(args, "criterion E category probabilities: " + ", ".join(f"{k} {v:.2f}" for k, v in iucn.items()))
+    if not outcome.passed:
+        print("tallyfit: convergence checks failed; see the report's diagnostics", file=sys.stderr)
+        return EXIT_CHECK
+    return EXIT_OK
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .config import RunSettings
+    from .scenarios import Scenario
+
+    base = RunSettings(rates="logistic", immigration=True, generation_time=2.0, thresholds=(0, 10),
+                       horizons=(5.0, 10.0, 20.0, 50.0, 100.0),
+                       scenarios=(Scenario("cull 10%/yr", harvest_rate=0.1, description="remove 10% a year"),
+                                  Scenario("release 2/yr", added_immigration=2.0,
+                                           description="release two birds a year")))
+    _say(args, f"demo: {DEMO_COUNTS.name} (invented data; see example_counts/heron_fen.toml)")
+    return _run_fit(args, DEMO_COUNTS, args.out, base)
+
+
+def _cmd_audit(args: argparse.Namespace) -> int:
+    from .run import audit_run
+
+    res = audit_run(args.run)
+    for name, ok, detail in res.checks:
+        _say(args, f"{'ok  ' if ok else 'FAIL'} {name}: {detail}")
+    if not res.passed:
+        print("tallyfit: audit failed:\n  " + "\n  ".join(res.problems), file=sys.stderr)
+        return EXIT_CHECK
+    _say(args, "audit passed")
+    return EXIT_OK
+
+
+def _cmd_solve(args: argparse.Namespace) -> int:
+    from .solve import load_rates_file, solve_rates
+
+    spec = load_rates_file(args.rates)
+    result = solve_rates(spec)
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        for key, value in result.items():
+            print(f"{key}: {value}")
+    return EXIT_OK
+
+
+def _cmd_simulate(args: argparse.Namespace) -> int:
+    from .solve import load_rates_file, simulate_counts
+
+    spec = load_rates_file(args.rates)
+    table = simulate_counts(spec, args.times, sites=args.sites, seed=args.seed)
+    from .run import write_atomic
+
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    write_atomic(args.out, table.to_csv(index=False))
+    _say(args, f"wrote {len(table)} counts to {args.out}")
+    return EXIT_OK
+
+
+COMMANDS = {"demo": _cmd_demo, "fit": lambda a: _run_fit(a, a.counts, a.out), "solve": _cmd_solve,
+            "simulate": _cmd_simulate, "audit": _cmd_audit}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``tallyfit`` console script; returns the exit code."""
+    args = _parser().parse_args(argv)
+    from .errors import InputError
+
+    try:
+        from chain.errors import ChainError
+    except ImportError:  # pragma: no cover
+        ChainError = ValueError  # type: ignore[misc]
+    try:
+        return COMMANDS[args.command](args)
+    except InputError as exc:
+        print(f"tallyfit: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except ChainError as exc:
+        print(f"tallyfit: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("tallyfit: interrupted; nothing was written (any earlier run folder is unchanged)", file=sys.stderr)
+        return EXIT_INTERRUPT
+
+
+if __name__ == "__main__":
+    sys.exit(main())
