@@ -65,6 +65,15 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=int, default=None, help="random seed")
     sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
 
+    sp = sub.add_parser("batch", help="fit each site separately on Dask; one run folder per site")
+    sp.add_argument("counts", type=Path, help="counts CSV with a site column")
+    sp.add_argument("--by", default="site", help="the site column (default site)")
+    sp.add_argument("--rates", help="rate family (default logistic)")
+    sp.add_argument("--out", type=Path, required=True, help="folder for the site run folders and index.csv")
+    sp.add_argument("--scheduler", help="address of a running Dask scheduler (default: a local cluster)")
+    sp.add_argument("--workers", type=int, help="local cluster workers (default: the machine's cores)")
+    fit_options(sp)
+
     sp = sub.add_parser("audit", help="re-check a run folder; exit 1 if anything fails")
     sp.add_argument("run", type=Path, help="run folder")
     sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
@@ -77,22 +86,9 @@ def _say(args: argparse.Namespace, text: str) -> None:
 
 
 def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettings | None" = None) -> int:
-    from .config import RunSettings, load_settings
     from .pipeline import run_pipeline
 
-    settings = load_settings(getattr(args, "config", None), base)
-    detection = getattr(args, "detection", None)
-    if detection is not None and detection != "estimate":
-        try:
-            detection = float(detection)
-        except ValueError:
-            from .errors import InputError
-            raise InputError(f'--detection must be a number in (0, 1] or "estimate", got {detection!r}') from None
-    settings = settings.with_options(rates=getattr(args, "rates", None), chains=getattr(args, "chains", None),
-                                     draws=getattr(args, "draws", None), tune=getattr(args, "tune", None),
-                                     seed=getattr(args, "seed", None), max_size=getattr(args, "max_size", None),
-                                     detection=detection, immigration=getattr(args, "immigration", None),
-                                     generation_time=getattr(args, "generation_time", None))
+    settings = _settings_from_args(args, base)
     outcome = run_pipeline(counts, settings, out, progress=not args.quiet,
                            log=(lambda s: None) if args.quiet else (lambda s: print(s, flush=True)))
     for w in outcome.warnings:
@@ -122,6 +118,41 @@ def _cmd_demo(args: argparse.Namespace) -> int:
                                            description="release two birds a year")))
     _say(args, f"demo: {DEMO_COUNTS.name} (invented data; see example_counts/heron_fen.toml)")
     return _run_fit(args, DEMO_COUNTS, args.out, base)
+
+
+def _settings_from_args(args: argparse.Namespace, base: "RunSettings | None" = None) -> "RunSettings":
+    from .config import load_settings
+    from .errors import InputError
+
+    settings = load_settings(getattr(args, "config", None), base)
+    detection = getattr(args, "detection", None)
+    if detection is not None and detection != "estimate":
+        try:
+            detection = float(detection)
+        except ValueError:
+            raise InputError(f'--detection must be a number in (0, 1] or "estimate", got {detection!r}') from None
+    return settings.with_options(rates=getattr(args, "rates", None), chains=getattr(args, "chains", None),
+                                 draws=getattr(args, "draws", None), tune=getattr(args, "tune", None),
+                                 seed=getattr(args, "seed", None), max_size=getattr(args, "max_size", None),
+                                 detection=detection, immigration=getattr(args, "immigration", None),
+                                 generation_time=getattr(args, "generation_time", None))
+
+
+def _cmd_batch(args: argparse.Namespace) -> int:
+    from .batch import run_batch
+
+    settings = _settings_from_args(args)
+    index = run_batch(args.counts, settings, args.out, by=args.by, scheduler=args.scheduler,
+                      n_workers=args.workers, log=(lambda s: None) if args.quiet else print)
+    _say(args, index.to_string(index=False))
+    _say(args, f"index: {args.out / 'index.csv'}")
+    failed = index[index["status"] == "failed"]
+    not_converged = index[(index["status"] == "ok") & (index["diagnostics_passed"] == False)]  # noqa: E712
+    if len(failed):
+        print(f"tallyfit: {len(failed)} site(s) failed: " + ", ".join(map(str, failed["site"])), file=sys.stderr)
+    if len(failed) or len(not_converged):
+        return EXIT_CHECK
+    return EXIT_OK
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
@@ -164,7 +195,7 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
 
 
 COMMANDS = {"demo": _cmd_demo, "fit": lambda a: _run_fit(a, a.counts, a.out), "solve": _cmd_solve,
-            "simulate": _cmd_simulate, "audit": _cmd_audit}
+            "simulate": _cmd_simulate, "audit": _cmd_audit, "batch": _cmd_batch}
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -78,7 +78,8 @@ def _summary_rows(parameters: pd.DataFrame, derived: dict[str, Any]) -> pd.DataF
 
 
 def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str | Path, *,
-                 progress: bool = True, log: Callable[[str], None] = print) -> PipelineOutcome:
+                 progress: bool = True, log: Callable[[str], None] = print, cores: int | None = None,
+                 workers: int | None = None) -> PipelineOutcome:
     """Fit, push forward and write a complete run folder.
 
     Args:
@@ -87,6 +88,8 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         out: run folder to create (replaced only when the new run is complete).
         progress: show progress bars.
         log: where progress messages go.
+        cores: processes for sampling chains (default: PyMC's choice; 1 inside Dask workers).
+        workers: processes for the push-forward (default: the machine's cores).
 
     Returns:
         PipelineOutcome.
@@ -105,7 +108,8 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         warnings.simplefilter("always")
         result = fit_counts(data, family, chains=settings.chains, draws=settings.draws, tune=settings.tune,
                             seed=settings.seed, cap=settings.max_size, detection=settings.detection,
-                            priors=settings.priors or None, pooling=settings.pooling, progressbar=progress)
+                            priors=settings.priors or None, pooling=settings.pooling, progressbar=progress,
+                            cores=cores)
     # our own warnings (e.g. detection estimated without replicate surveys) go to the report
     messages = [str(w.message) for w in caught if w.category.__module__.startswith("infer")]
     post = result.idata.posterior
@@ -121,7 +125,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     scenarios = (BASELINE,) + tuple(settings.scenarios)
     n_draws = post.sizes["chain"] * post.sizes["draw"]
     log(f"pushing {n_draws} draws × {len(scenarios)} scenario(s) through the chain solvers")
-    derived = push_forward(family, post, spec, scenarios, progress=progress)
+    derived = push_forward(family, post, spec, scenarios, progress=progress, workers=workers)
     derived_summary = summarise(derived, level=settings.credible_level)
 
     diagnostics = dict(result.diagnostics)
