@@ -30,26 +30,26 @@ def posterior(n: int, seed: int = 0) -> xr.Dataset:
                       coords={"chain": range(4), "draw": range(n // 4)})
 
 
-def baseline_one(b: np.ndarray, d: np.ndarray, start: int, horizons: np.ndarray) -> tuple[float, np.ndarray]:
-    n1 = b.size
+def _generator(b: np.ndarray, d: np.ndarray) -> np.ndarray:
     bb = b.copy()
-    bb[-1] = 0
+    bb[-1] = 0.0  # the cap reflects
     q = np.diag(bb[:-1], 1) + np.diag(d[1:], -1)
-    q -= np.diag(q.sum(axis=1))
+    return q - np.diag(q.sum(axis=1))
+
+
+def baseline_one(b: np.ndarray, d: np.ndarray, start: int, horizons: np.ndarray) -> tuple[float, np.ndarray]:
+    """The dense route for one draw: null space, expm per horizon, eig, solve."""
+    q = _generator(b, d)
     ns = sl.null_space(q.T)[:, 0]
     _ = ns / ns.sum()
-    qa = q.copy()
-    qa[0, :] = 0
-    qa[0, 1] = 0
-    qa[1, 0] = d[1]
-    qa = np.diag(np.r_[0, bb[1:-1], 0][:n1][:-1], 1) + np.diag(d[1:], -1)
-    qa -= np.diag(qa.sum(axis=1))
-    qa[0, :] = 0
+    b0 = b.copy()
+    b0[0] = 0.0  # extinction: 0 absorbing
+    qa = _generator(b0, d)
     ext = np.array([sl.expm(qa * t)[start, 0] for t in horizons])
     qt = qa[1:, 1:]
     w, vl = sl.eig(qt, left=True, right=False)
     _ = vl[:, np.argmax(w.real)]
-    mtte = sl.solve(-qt, np.ones(n1 - 1))[start - 1]
+    mtte = sl.solve(-qt, np.ones(b.size - 1), assume_a="gen")[start - 1]
     return mtte, ext
 
 
