@@ -25,7 +25,7 @@ from .series import SeriesSum, sum_log_series
 
 def _log_rho(up: np.ndarray, down: np.ndarray, base: int = 0) -> np.ndarray:
     """log ρ_j relative to ``base``: Σ_{k=base+1..j} log(down_k/up_k), j = base..len-1."""
-    with np.errstate(divide="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore"):
         step = np.log(down[base + 1:]) - np.log(up[base + 1:])
     return np.concatenate([[0.0], np.cumsum(step)])
 
@@ -101,7 +101,10 @@ def extinction_probability(rates: Rates, sizes: np.ndarray | None = None, *,
         u = np.zeros(max(top_needed, stuck) + 1)
         u[: stuck + 1] = ruin_probability(up, down, stuck)
         return u[sizes], None
-    s = sum_log_series(terms, target=target, what="the sum of ρ_j = Π μ_k/λ_k")
+    def log_ratio(j: np.ndarray) -> np.ndarray:  # ρ_{j+1}/ρ_j = μ_{j+1}/λ_{j+1}
+        up_j, down_j = rates.at(j + 1)
+        return np.log(down_j) - np.log(up_j)
+    s = sum_log_series(terms, target=target, what="the sum of ρ_j = Π μ_k/λ_k", log_ratio=log_ratio)
     if s.status == "diverged":
         return np.ones(sizes.size), s
     if not s.converged:
@@ -177,7 +180,12 @@ def log_mean_time_to_extinction(rates: Rates, sizes: np.ndarray | None = None, *
                 big_l = np.concatenate([[0.0], np.cumsum(np.log(up[1:-1]))])
                 big_m = np.concatenate([[0.0], np.cumsum(np.log(down[1:]))])
             return big_l - big_m[1:]
-        series = sum_log_series(log_theta, target=target, what="the mean-time series Σ θ_i")
+        def log_ratio(j: np.ndarray) -> np.ndarray:  # θ_{j+2}/θ_{j+1} = λ_{j+1}/μ_{j+2}
+            up_j, _ = rates.at(j + 1)
+            _, down_j = rates.at(j + 2)
+            return np.log(up_j) - np.log(down_j)
+        series = sum_log_series(log_theta, target=target, what="the mean-time series Σ θ_i",
+                                log_ratio=log_ratio)
         if series.status == "diverged" or np.isposinf(series.log_total):
             out = np.full(sizes.size, np.inf)
             out[sizes == 0] = -np.inf

@@ -21,16 +21,14 @@ MAX_UNBOUNDED_SIZE = 2**22
 
 
 def _check_values(values: np.ndarray, name: str, offset: int = 0) -> None:
-    bad = ~np.isfinite(values)
+    bad = ~np.isfinite(values) | (values < 0)
     if bad.any():
-        n = int(np.flatnonzero(bad)[0]) + offset
-        raise RateError(f"{name} rate at size {n} is {values[n - offset]!r}; rates must be finite",
-                        name=name, size=n, value=float(values[n - offset]))
-    neg = values < 0
-    if neg.any():
-        n = int(np.flatnonzero(neg)[0]) + offset
-        raise RateError(f"{name} rate at size {n} is negative ({values[n - offset]!r}); rates must be >= 0",
-                        name=name, size=n, value=float(values[n - offset]))
+        n = int(np.flatnonzero(bad)[0])  # the first offending size, whatever the fault
+        v = values[n]
+        what = "must be finite" if not np.isfinite(v) else f"is negative ({v!r}); rates must be >= 0"
+        raise RateError(f"{name} rate at size {n + offset} is {v!r}; rates must be finite" if not np.isfinite(v)
+                        else f"{name} rate at size {n + offset} {what}",
+                        name=name, size=n + offset, value=float(v))
 
 
 @dataclass(frozen=True)

@@ -112,7 +112,12 @@ def stationary(rates: Rates, *, target: float = 1e-12) -> Stationary:
             log_z = float(logsumexp(finite_lt))
             tail, status, reason = 0.0, "converged", "finite chain: the normalising sum is finite"
         else:
-            s = sum_log_series(terms, target=target, what="the normalising sum of the stationary measure")
+            def log_ratio(n: np.ndarray) -> np.ndarray:  # π_{n+1}/π_n = λ_n/μ_{n+1}
+                up_n, _ = rates.at(n)
+                _, down_n1 = rates.at(n + 1)
+                return np.log(up_n) - np.log(down_n1)
+            s = sum_log_series(terms, target=target, what="the normalising sum of the stationary measure",
+                               log_ratio=log_ratio)
             if not s.converged:
                 return _none(s.reason + ("; no stationary distribution exists (the population is "
                                          "not regulated)" if s.status == "diverged" else

@@ -191,6 +191,25 @@ def test_linear_birth_death_extinction_curve(lam, mu, start):
     assert np.all(np.asarray(curve.error_bound) <= 1e-10)
 
 
+@pytest.mark.parametrize("lam,mu", [(1.0, 0.7), (0.5, 1.0), (1.2, 0.4)])
+@pytest.mark.parametrize("t", [0.1, 1.0, 3.0])
+def test_linear_birth_death_transition_from_one(lam, mu, t):
+    # Kendall (1948); Bailey (1964) ch. 8 (from memory): P_{1,0}(t) = α,
+    # P_{1,n}(t) = (1 − α)(1 − β)β^{n−1}, α = μ(e^{(λ−μ)t} − 1)/(λe^{(λ−μ)t} − μ),
+    # β = λ(e^{(λ−μ)t} − 1)/(λe^{(λ−μ)t} − μ); the n >= 1 part is scipy.stats.geom(1 − β).
+    e = np.exp((lam - mu) * t)
+    alpha = mu * (e - 1) / (lam * e - mu)
+    beta = lam * (e - 1) / (lam * e - mu)
+    # Cap where the geometric tail β^cap is below 1e-30, so paths that touched the cap cannot matter.
+    cap = int(np.ceil(-30 * np.log(10) / np.log(beta))) + 20
+    n = np.arange(cap + 1, dtype=float)
+    row = BirthDeathChain(lam * n, mu * n).transition(t, starts=[1])[0]
+    expected = np.r_[alpha, (1 - alpha) * stats.geom.pmf(n[1:], 1 - beta)]
+    np.testing.assert_allclose(row, expected, rtol=0, atol=1e-13)
+    ok = expected >= 1e-20  # where paths that touched the cap (< 1e-30) cannot matter
+    np.testing.assert_allclose(row[ok], expected[ok], rtol=1e-8)
+
+
 @pytest.mark.parametrize("lam,mu", [(2.0, 1.0), (1.0, 0.3), (1.0, 2.0), (1.0, 1.0)])
 def test_linear_birth_death_ultimate_extinction_unbounded(lam, mu):
     chain = BirthDeathChain(lambda n: lam * n, lambda n: mu * n)
@@ -210,6 +229,8 @@ def test_unbounded_extinction_probability_slowly_converging_tail():
         got = chain.extinction_probability(sizes)
     except ChainError as err:  # refusing is honest; a silently wrong number is not
         assert "converg" in str(err).lower() or "tail" in str(err).lower()
+        return
+    if np.all(np.isnan(got)):  # documented refusal: nan where the series was inconclusive
         return
     np.testing.assert_allclose(got, 1.0 / (sizes + 1), rtol=0, atol=1e-5)
 
@@ -307,19 +328,20 @@ def test_gamblers_ruin_probability(p, a):
 
 @pytest.mark.parametrize("p,a", [(0.5, 10), (0.45, 10), (0.6, 8)])
 def test_gamblers_ruin_expected_duration(p, a):
-    # E[duration] = Σ_{k>=0} P(game not over after k steps), read off the k-step matrices.
+    # E[duration] = Σ_{k>=0} P(game not over after k steps), the mass still on 1..a−1 in P^k.
     q = 1.0 - p
     chain = ruin_step_chain(p, q, a)
-    starts = np.arange(a + 1)
     total = np.zeros(a + 1)
-    for k in range(0, 3000):
-        pk = chain.transition(k, starts=starts)
-        alive = 1.0 - pk[:, 0] - pk[:, a]
+    for k in range(0, 5000):
+        alive = chain.transition(k)[:, 1:a].sum(axis=1)
         total += alive
-        if alive.max() < 1e-15:
+        if alive.max() < 1e-18:
             break
+    else:
+        raise AssertionError("game did not end within 5000 steps")
     # Feller (1968) Vol. 1, XIV.3, eq. (3.4).
-    np.testing.assert_allclose(total, feller_duration(p, q, a, starts.astype(float)), rtol=1e-9, atol=1e-12)
+    z = np.arange(a + 1, dtype=float)
+    np.testing.assert_allclose(total, feller_duration(p, q, a, z), rtol=1e-9, atol=1e-12)
 
 
 def test_gamblers_ruin_matches_linear_solve():
@@ -590,7 +612,7 @@ def test_quasi_stationary_is_left_eigenvector(rates):
     assert qsd.converged
     assert qsd.pmf[0] == 0.0
     assert qsd.pmf.sum() == pytest.approx(1.0, abs=1e-12)
-    # Darroch & Seneta (1967) / Karlin & Taylor (1975) ch. 4: left eigenvector of Q restricted to
+    # Darroch & Seneta (1967) J. Appl. Prob. 4:192–196 (from memory); Karlin & Taylor (1975) ch. 4: left eigenvector of Q restricted to
     # sizes >= 1 for the eigenvalue nearest 0 (scipy.linalg.eig).
     w, vl = linalg.eig(generator(birth, death)[1:, 1:], left=True, right=False)
     i = int(np.argmax(w.real))
@@ -609,7 +631,7 @@ def test_step_quasi_stationary_is_left_eigenvector():
     chain = StepChain(p_up, q_dn)
     qsd = chain.quasi_stationary()
     m = step_matrix(p_up, q_dn)[1:, 1:]
-    # Darroch & Seneta (1965) discrete-time form: left eigenvector of the substochastic matrix (scipy.linalg.eig).
+    # Darroch & Seneta (1965) J. Appl. Prob. 2:88–100 (from memory), discrete-time form: left eigenvector of the substochastic matrix (scipy.linalg.eig).
     w, vl = linalg.eig(m, left=True, right=False)
     i = int(np.argmax(w.real))
     v = np.abs(vl[:, i].real)

@@ -121,12 +121,31 @@ def test_extinction_probability_within_unit_interval(chain_rates):
     np.testing.assert_allclose(u, 1.0, rtol=0, atol=1e-12)
 
 
+def mp_minus_restricted_generator(birth: np.ndarray, death: np.ndarray) -> mpmath.matrix:
+    """−Q restricted to sizes 1..N, built in mpmath from the rates themselves.
+
+    The diagonal λ_n + μ_n is summed in mpmath: summed in double precision its rounding
+    (relative 1e-16 of λ_n) can be a large part of a tiny μ_n and move the answer.
+    """
+    n_cap = len(birth) - 1
+    lam = [mpmath.mpf(float(x)) for x in birth]
+    mu = [mpmath.mpf(float(x)) for x in death]
+    lam[n_cap] = mpmath.mpf(0)  # the cap reflects
+    a = mpmath.zeros(n_cap, n_cap)
+    for i in range(1, n_cap + 1):
+        a[i - 1, i - 1] = lam[i] + mu[i]
+        if i < n_cap:
+            a[i - 1, i] = -lam[i]
+        if i > 1:
+            a[i - 1, i - 2] = -mu[i]
+    return a
+
+
 def mp_mean_time(birth: np.ndarray, death: np.ndarray, dps: int = 400) -> np.ndarray:
     """Karlin & Taylor (1975) ch. 4: −Q_T τ = 1 on sizes 1..N, solved by mpmath.lu_solve."""
-    q = generator(birth, death)
     with mpmath.workdps(dps):
-        a = mpmath.matrix((-q[1:, 1:]).tolist())
-        tau = mpmath.lu_solve(a, mpmath.matrix([1] * (q.shape[0] - 1)))
+        a = mp_minus_restricted_generator(birth, death)
+        tau = mpmath.lu_solve(a, mpmath.matrix([1] * (len(birth) - 1)))
         return np.array([0.0] + [float(x) for x in tau])
 
 
@@ -304,7 +323,7 @@ def test_simulate_reproducible_and_matches_transition(chain_rates, data):
         # Gillespie (1977) J. Phys. Chem. 81:2340–2361: exact paths; their mean is within 5
         # standard errors of the exact mean (false-alarm rate ~ 6e-7 per check).
         assert abs(paths[:, j].mean() - mean) <= 5 * se + 1e-12
-        p0 = row[0]
+        p0 = min(max(row[0], 0.0), 1.0)
         se0 = np.sqrt(p0 * (1 - p0) / n_paths)
         assert abs((paths[:, j] == 0).mean() - p0) <= 5 * se0 + 1e-12
 
@@ -408,10 +427,9 @@ def test_step_stationary_balances(chain_pq):
 def test_step_mean_time_equals_linear_system(chain_pq):
     p, q = chain_pq
     # Karlin & Taylor (1975) ch. 3: (I − P_T) τ = 1 on sizes 1..N, solved with mpmath.lu_solve;
-    # I − P has off-diagonals −p, −q and diagonal p + q (built from p, q directly, no 1 − r rounding).
-    i_minus_p = -generator(p, q)
+    # I − P has off-diagonals −p, −q and diagonal p + q (built in mpmath from p, q: no rounding of 1 − r).
     with mpmath.workdps(400):
-        a = mpmath.matrix(i_minus_p[1:, 1:].tolist())
+        a = mp_minus_restricted_generator(p, q)
         ref = [float(x) for x in mpmath.lu_solve(a, mpmath.matrix([1] * (p.size - 1)))]
     got = StepChain(p, q).mean_time_to_extinction()
     np.testing.assert_allclose(got[1:], ref, rtol=1e-9)
