@@ -75,10 +75,10 @@ def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray], scenar
     above the cap, and its pmf on 0..cap (renormalised within the cap) when it exists."""
 
     def rates(n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        sizes = np.arange(int(n.max()) + 1)
+        sizes = np.concatenate([[0], np.asarray(n).ravel()])  # size 0 first: scenarios read ι = λ_0
         b, d = family.numpy_rates(params, sizes)
         b, d = scenario.apply(b[0], d[0], sizes)
-        return b[n], d[n]
+        return b[1:].reshape(np.shape(n)), d[1:].reshape(np.shape(n))
 
     # one evaluation of the formula well past the cap serves every truncation the series tries
     reach = max(256, 4 * cap)

@@ -112,6 +112,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
                             cores=cores)
     # our own warnings (e.g. detection estimated without replicate surveys) go to the report
     messages = [str(w.message) for w in caught if w.category.__module__.startswith("infer")]
+    messages += [m for m in result.messages if m not in messages]
     post = result.idata.posterior
     if settings.max_draws is not None and post.sizes["chain"] * post.sizes["draw"] > settings.max_draws:
         keep = max(1, settings.max_draws // post.sizes["chain"])
@@ -131,9 +132,9 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     diagnostics = dict(result.diagnostics)
     cap_check = dict(result.cap_check) if result.cap_check is not None else {}
     warn = list(messages)
-    if not diagnostics.get("passed", False):
-        failed = [c["name"] for c in diagnostics.get("checks", []) if not c.get("passed", True)]
-        warn.append("CONVERGENCE CHECKS FAILED (" + ", ".join(failed) + "): do not use these results; "
+    if not diagnostics.get("passed", False) and not any("convergence" in m.lower() for m in warn):
+        failed = [str(f) for f in diagnostics.get("failed", [])]
+        warn.append("CONVERGENCE CHECKS FAILED (" + "; ".join(failed) + "): do not use these results; "
                     "run more draws (--draws) or simplify the model")
     if cap_check.get("warning"):
         warn.append(str(cap_check["warning"]))

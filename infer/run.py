@@ -170,9 +170,16 @@ def audit_run(folder: str | Path) -> AuditResult:
             from .fit import diagnose
 
             idata = az.from_netcdf(folder / "posterior.nc")
-            diag = diagnose(idata)
-            for check in diag.get("checks", []):
-                res.add(f"diagnostic {check['name']}", bool(check["passed"]), check.get("detail", ""))
+            diag = diagnose(idata, [str(v) for v in idata.posterior.data_vars])
+            for label, entry in diag["parameters"].items():
+                for key in ("r_hat", "ess_bulk", "ess_tail"):
+                    e = entry[key]
+                    res.add(f"{key} of {label}", bool(e["passed"]),
+                            f"{e['value']:.4g} (threshold {e['threshold']:g}, recomputed from posterior.nc)")
+            for key in ("divergences", "bfmi"):
+                e = diag[key]
+                shown = e.get("min", e.get("value"))
+                res.add(key, bool(e["passed"]), f"{shown} (threshold {e['threshold']})")
             recorded = json.loads((folder / "summary.json").read_text(encoding="utf-8")).get("diagnostics", {})
             if "passed" in recorded:
                 res.add("diagnostics recorded", bool(recorded["passed"]) == bool(diag["passed"]),
