@@ -191,13 +191,15 @@ def _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, Lams, Ks, rbs):
 
 @njit(cache=True, nogil=True)
 def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
-                  e_ptr, e_end, e_mult, want_grad,
-                  out_prob, out_leak, out_drop, out_lam, out_steps, g_off, out_gb, out_gd):
+                  e_ptr, e_end, e_mult, want_grad, linear,
+                  out_prob, out_leak, out_leak_lo, out_leak_hi, out_drop, out_lam, out_steps,
+                  g_off, out_gb, out_gd):
     """One forward sweep (and, for gradients, one backward sweep) per group (start, dt, window).
 
-    out_prob[e]: windowed P(start -> end_e); out_leak[g]: window leak bound; out_drop[g]:
-    dropped Poisson mass; out_gb/out_gd[g_off[g] + j]: ∂ Σ_e mult_e log P_e / ∂ rate at
-    size lo+j (only where P_e > 0).
+    out_prob[e]: windowed P(start -> end_e); out_leak[g]: window leak bound, split into the
+    mass that left below (out_leak_lo) and above (out_leak_hi); out_drop[g]: dropped Poisson
+    mass; out_gb/out_gd[g_off[g] + j]: ∂ Σ_e mult_e log P_e (or, with ``linear``,
+    ∂ Σ_e mult_e P_e) / ∂ rate at size lo+j (log: only where P_e > 0).
     """
     G = g_start.shape[0]
     Lams = np.empty(G)
@@ -246,24 +248,30 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
         for j in range(W):
             store[j] = 0.0
         store[g_start[g] - lo] = 1.0
-        cum = 0.0
-        leak = 0.0
+        cum_lo = 0.0
+        cum_hi = 0.0
+        leak_lo = 0.0
+        leak_hi = 0.0
         for k in range(K + 1):
             base = cur * W
             wk = w[k]
             if wk > 0.0:
                 for e in range(e0, e1):
                     out_prob[e] += wk * store[base + e_end[e] - lo]
-                leak += wk * cum
+                leak_lo += wk * cum_lo
+                leak_hi += wk * cum_hi
             if k == K:
                 break
-            cum += store[base] * q[0] + store[base + W - 1] * p[W - 1]
+            cum_lo += store[base] * q[0]
+            cum_hi += store[base + W - 1] * p[W - 1]
             nxt = cur + 1 if want_grad else 1 - cur
             a = store[base:base + W]
             b = store[nxt * W:nxt * W + W]
             _step_forward(a, b, p, q, d, W)
             cur = nxt
-        out_leak[g] = leak
+        out_leak_lo[g] = leak_lo
+        out_leak_hi[g] = leak_hi
+        out_leak[g] = leak_lo + leak_hi
         if not want_grad:
             continue
         # backward sweep seeded with g = Σ_e mult_e / P_e e_{end_e}
@@ -271,7 +279,10 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
         for j in range(W):
             seed[j] = 0.0
         for e in range(e0, e1):
-            if out_prob[e] > 0.0:
+            if linear:
+                seed[e_end[e] - lo] += e_mult[e]
+                any_seed = True
+            elif out_prob[e] > 0.0:
                 seed[e_end[e] - lo] += e_mult[e] / out_prob[e]
                 any_seed = True
         off = g_off[g]
@@ -315,7 +326,8 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
 @njit(cache=True, nogil=True)
 def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
                    iv_lo, iv_hi, iv_dt, iv_tail, want_grad,
-                   out_logc, out_leak, out_drop, out_marg, out_gb, out_gd, out_steps):
+                   out_logc, out_leak, out_leak_lo, out_leak_hi, out_drop, out_marg, out_gb, out_gd,
+                   out_steps):
     """Forward–backward over hidden sizes for several independent series.
 
     Series s has occasions occ_ptr[s]..occ_ptr[s+1]-1. Occasion i allows hidden sizes
@@ -388,6 +400,8 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
             c += emit[k]
         out_logc[i0] = math.log(c) + emax[i0] if c > 0.0 else -np.inf
         out_leak[i0] = 0.0
+        out_leak_lo[i0] = 0.0
+        out_leak_hi[i0] = 0.0
         out_drop[i0] = 0.0
         for k in range(le_ptr[i0], le_ptr[i0 + 1]):
             phi[k] = emit[k] / c if c > 0.0 else 0.0
@@ -397,6 +411,8 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
             if dead:
                 out_logc[i] = -np.inf
                 out_leak[i] = 0.0
+                out_leak_lo[i] = 0.0
+                out_leak_hi[i] = 0.0
                 out_drop[i] = 0.0
                 continue
             lo = iv_lo[i]
@@ -414,8 +430,10 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
             for k in range(le_ptr[i - 1], le_ptr[i]):
                 store[off_prev + k - le_ptr[i - 1]] = phi[k]
             cur = 0
-            cum = 0.0
-            leak = 0.0
+            cum_lo = 0.0
+            cum_hi = 0.0
+            leak_lo = 0.0
+            leak_hi = 0.0
             r0 = a_lo[i] - lo
             r1 = a_hi[i] - lo
             for k in range(K + 1):
@@ -424,14 +442,18 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
                 if wk > 0.0:
                     for j in range(r0, r1 + 1):
                         row[j] += wk * store[base + j]
-                    leak += wk * cum
+                    leak_lo += wk * cum_lo
+                    leak_hi += wk * cum_hi
                 if k == K:
                     break
-                cum += store[base] * q[0] + store[base + W - 1] * p[W - 1]
+                cum_lo += store[base] * q[0]
+                cum_hi += store[base + W - 1] * p[W - 1]
                 nxt = 1 - cur
                 _step_forward(store[base:base + W], store[nxt * W:nxt * W + W], p, q, d, W)
                 cur = nxt
-            out_leak[i] = leak
+            out_leak_lo[i] = leak_lo
+            out_leak_hi[i] = leak_hi
+            out_leak[i] = leak_lo + leak_hi
             c = 0.0
             for k in range(le_ptr[i], le_ptr[i + 1]):
                 v = row[r0 + k - le_ptr[i]] * emit[k]
@@ -635,6 +657,7 @@ class PairsResult:
     Attributes:
         prob: shape (n_ends,); windowed P(start_g -> end_e over dt_g), ≤ the true value.
         leaked: shape (n_groups,); bound on the probability of leaving the group's window.
+        leaked_low, leaked_high: the parts of ``leaked`` that left below and above.
         dropped: shape (n_groups,); Poisson mass cut off (true P ≤ prob + leaked + dropped).
         rate: shape (n_groups,); Λ per group.
         steps: shape (n_groups,); number of B-steps per group.
@@ -646,6 +669,8 @@ class PairsResult:
 
     prob: np.ndarray
     leaked: np.ndarray
+    leaked_low: np.ndarray
+    leaked_high: np.ndarray
     dropped: np.ndarray
     rate: np.ndarray
     steps: np.ndarray
@@ -656,7 +681,7 @@ class PairsResult:
 
 def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, group_dt,
                              group_lo, group_hi, group_tail, end_ptr, end_size, end_weight,
-                             *, grad: bool = True) -> PairsResult:
+                             *, grad: bool = True, linear: bool = False) -> PairsResult:
     """Windowed P(start -> end) for groups of pairs, and the adjoint gradient of Σ w log P.
 
     A group is one start size, one duration and one window; its ends share the group's
@@ -675,6 +700,7 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
         end_weight: weight (e.g. multiplicity) of log P for each pair in the gradient.
         grad: compute gradients (one extra backward sweep per group, with the forward
             steps stored).
+        linear: differentiate Σ w P instead of Σ w log P.
 
     Returns:
         PairsResult.
@@ -710,6 +736,8 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
     np.cumsum(widths, out=off[1:])
     prob = np.zeros(ee.size)
     leak = np.zeros(G)
+    leak_lo = np.zeros(G)
+    leak_hi = np.zeros(G)
     drop = np.zeros(G)
     lam = np.zeros(G)
     steps = np.zeros(G, dtype=np.int64)
@@ -717,10 +745,52 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
     gb = np.zeros(nflat)
     gd = np.zeros(nflat)
     if G:
-        _pairs_kernel(b, m, N, gs, glo, ghi, gdt, gtail, ep, ee, ew, bool(grad),
-                      prob, leak, drop, lam, steps, off, gb, gd)
-    return PairsResult(prob=prob, leaked=leak, dropped=drop, rate=lam, steps=steps,
-                       grad_offsets=off, grad_birth=gb, grad_death=gd)
+        _pairs_kernel(b, m, N, gs, glo, ghi, gdt, gtail, ep, ee, ew, bool(grad), bool(linear),
+                      prob, leak, leak_lo, leak_hi, drop, lam, steps, off, gb, gd)
+    return PairsResult(prob=prob, leaked=leak, leaked_low=leak_lo, leaked_high=leak_hi, dropped=drop,
+                       rate=lam, steps=steps, grad_offsets=off, grad_birth=gb, grad_death=gd)
+
+
+def weighted_transition_grad(birth: np.ndarray, death: np.ndarray, starts, ends, weights, t: float,
+                             lo: int = 0, hi: int | None = None, *,
+                             tail: float = 1e-16) -> tuple[float, np.ndarray, np.ndarray, float]:
+    """Σ_{s,e} G_{se} P_{starts[s], ends[e]}(t) on a window, with its gradient (matrix adjoint).
+
+    Args:
+        birth, death: rates over sizes 0..N.
+        starts, ends: sizes (in lo..hi).
+        weights: G, shape (len(starts), len(ends)).
+        t: time > 0.
+        lo, hi: the window (default the whole range).
+        tail: Poisson tail target.
+
+    Returns:
+        (value, d_birth, d_death, bound): gradients over sizes 0..N; ``bound`` bounds the
+        error of ``value`` from the window and the cut Poisson tail (Σ_se |G_se| (leak_s + drop_s)).
+
+    Raises:
+        RateError: bad rates, window, sizes or weights.
+    """
+    b, m, N = _check_rates(birth, death)
+    lo, hi = _check_window(lo, hi, N)
+    st = np.atleast_1d(np.asarray(starts, dtype=np.int64))
+    en = np.atleast_1d(np.asarray(ends, dtype=np.int64))
+    g = np.asarray(weights, dtype=float)
+    if g.shape != (st.size, en.size) or not np.all(np.isfinite(g)):
+        raise RateError(f"weights must be finite with shape ({st.size}, {en.size}), got {g.shape}")
+    S = st.size
+    r = pair_log_likelihood_grad(b, m, st, np.full(S, float(t)), np.full(S, lo), np.full(S, hi),
+                                 np.full(S, float(tail)), np.arange(S + 1) * en.size, np.tile(en, S),
+                                 g.ravel(), grad=True, linear=True)
+    value = float(np.dot(r.prob, g.ravel()))
+    d_birth = np.zeros(N + 1)
+    d_death = np.zeros(N + 1)
+    for k in range(S):
+        a, z = r.grad_offsets[k], r.grad_offsets[k + 1]
+        d_birth[lo:hi + 1] += r.grad_birth[a:z]
+        d_death[lo:hi + 1] += r.grad_death[a:z]
+    bound = float(np.sum(np.abs(g).sum(axis=1) * (r.leaked + r.dropped)))
+    return value, d_birth, d_death, bound
 
 
 @dataclass(frozen=True)
@@ -732,6 +802,7 @@ class HiddenResult:
             log-likelihood on the kept sizes and windows.
         leaked: per occasion (0 for a series' first), the window leak of the interval
             ending there, relative to a unit-mass start.
+        leaked_low, leaked_high: the parts of ``leaked`` that left below and above.
         dropped: per occasion, Poisson mass cut off for that interval.
         marginals: posterior probability of each allowed hidden size (layout of log_weight).
         grad_birth, grad_death: shape (n_series, N+1); gradients of each series'
@@ -741,6 +812,8 @@ class HiddenResult:
 
     log_norm: np.ndarray
     leaked: np.ndarray
+    leaked_low: np.ndarray
+    leaked_high: np.ndarray
     dropped: np.ndarray
     marginals: np.ndarray
     grad_birth: np.ndarray
@@ -807,12 +880,14 @@ def hidden_forward_backward(birth: np.ndarray, death: np.ndarray, series_ptr, si
             raise RateError("interval durations and tail targets must be > 0")
     logc = np.zeros(nI)
     leak = np.zeros(nI)
+    leak_lo = np.zeros(nI)
+    leak_hi = np.zeros(nI)
     drop = np.zeros(nI)
     marg = np.zeros(lw.size)
     gb = np.zeros((S, N + 1))
     gd = np.zeros((S, N + 1))
     steps = np.zeros(nI, dtype=np.int64)
     _hidden_kernel(b, m, N, sp, alo, ahi, wp, lw, wlo, whi, tdt, tl, bool(grad),
-                   logc, leak, drop, marg, gb, gd, steps)
-    return HiddenResult(log_norm=logc, leaked=leak, dropped=drop, marginals=marg,
-                        grad_birth=gb, grad_death=gd, steps=steps)
+                   logc, leak, leak_lo, leak_hi, drop, marg, gb, gd, steps)
+    return HiddenResult(log_norm=logc, leaked=leak, leaked_low=leak_lo, leaked_high=leak_hi, dropped=drop,
+                        marginals=marg, grad_birth=gb, grad_death=gd, steps=steps)

@@ -1,0 +1,169 @@
+"""Simulation-based calibration of the fitter for the linear and logistic families.
+
+Talts, Betancourt, Simpson, Vehtari & Gelman (2018), "Validating Bayesian inference
+algorithms with simulation-based calibration", arXiv:1804.06788: draw parameters θ from
+the prior, simulate a data set from θ, fit it, and take the rank of θ among L posterior
+draws (thinned to be nearly independent). If the fitter is calibrated the ranks are
+uniform on 0..L. Printed per parameter:
+
+* a chi-square test of uniformity of the ranks in B equal bins (scipy.stats.chisquare,
+  B − 1 degrees of freedom) with its p-value, and the binned counts;
+* the coverage of the central 50% and 90% posterior intervals (calibrated: 0.5 and 0.9,
+  give or take the binomial standard error shown).
+
+The data are simulated from the same model that is fitted: one site counted at
+T + 1 yearly surveys from a fixed start size, the chain capped at the same size N as the
+fit (the cap reflects), exact event-by-event paths (chain.BirthDeathChain.simulate).
+Priors are fixed (not scaled to each data set) and given to the fit explicitly.
+
+Run:  .venv/bin/python bench/sbc_bench.py --replicates 100        (long: ~1 h on 2 cores)
+      .venv/bin/python bench/sbc_bench.py --replicates 8 --draws 200   (a quick look)
+"""
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import sys
+import time
+import warnings
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from scipy import stats  # noqa: E402
+
+from chain import BirthDeathChain  # noqa: E402
+from infer.data import CountData  # noqa: E402
+from infer.families import Linear, Logistic, scipy_prior  # noqa: E402
+
+#: Fixed simulation design and priors per family.
+DESIGNS = {
+    "linear": dict(
+        family=Linear(), start=30, years=15, cap=150,
+        priors={"birth_rate": {"dist": "lognormal", "mu": math.log(0.4), "sigma": 0.4},
+                "death_rate": {"dist": "lognormal", "mu": math.log(0.4), "sigma": 0.4}}),
+    "logistic": dict(
+        family=Logistic(), start=15, years=15, cap=150,
+        priors={"birth_rate": {"dist": "lognormal", "mu": math.log(0.8), "sigma": 0.35},
+                "death_rate": {"dist": "lognormal", "mu": math.log(0.25), "sigma": 0.35},
+                "carrying_capacity": {"dist": "lognormal", "mu": math.log(40.0),
+                                      "sigma": 0.3}}),
+}
+
+
+def one_replicate(args: tuple) -> dict:
+    """Draw θ, simulate, fit, and return the ranks and interval hits of one replicate."""
+    from infer.fit import fit_counts
+
+    family_name, rep, seed, draws, tune, thin_to = args
+    design = DESIGNS[family_name]
+    fam = design["family"]
+    rng = np.random.default_rng(seed)
+    theta = {k: float(scipy_prior(v).rvs(random_state=rng)) for k, v in design["priors"].items()}
+    sizes = np.arange(design["cap"] + 1)
+    birth, death = fam.numpy_rates(theta, sizes)
+    times = np.arange(design["years"] + 1, dtype=float)
+    path = BirthDeathChain(birth[0], death[0]).simulate(design["start"], times,
+                                                        seed=int(rng.integers(2**31)))[0]
+    data = CountData.single(times + 2000.0, path.astype(float))
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        r = fit_counts(data, fam, chains=2, draws=draws, tune=tune, cap=design["cap"],
+                       priors=design["priors"], seed=int(rng.integers(2**31)),
+                       progressbar=False, cores=1, n_predictive=20, n_prior=20)
+    out = {"family": family_name, "rep": rep, "seconds": time.perf_counter() - t0,
+           "passed": r.passed, "final_count": int(path[-1]), "theta": theta, "ranks": {},
+           "in50": {}, "in90": {}}
+    for k, true in theta.items():
+        x = r.idata.posterior[k].values.reshape(-1)
+        q = np.quantile(x, [0.05, 0.25, 0.75, 0.95])
+        out["in50"][k] = bool(q[1] < true < q[2])
+        out["in90"][k] = bool(q[0] < true < q[3])
+        # thin to L near-independent draws (chains interleaved evenly), rank = #(draw < θ)
+        chains = r.idata.posterior[k].values
+        per = max(1, thin_to // chains.shape[0])
+        idx = np.unique(np.round(np.linspace(0, chains.shape[1] - 1, per)).astype(int))
+        thinned = chains[:, idx].reshape(-1)
+        out["ranks"][k] = (int(np.sum(thinned < true)), int(thinned.size))
+    return out
+
+
+def summarise(results: list[dict], bins: int) -> None:
+    """Print rank-uniformity statistics and interval coverage per family and parameter."""
+    for fam in sorted({r["family"] for r in results}):
+        rs = [r for r in results if r["family"] == fam]
+        n = len(rs)
+        passed = sum(r["passed"] for r in rs)
+        secs = sum(r["seconds"] for r in rs)
+        print(f"\n== {fam}: {n} replicates, diagnostics passed in {passed}, "
+              f"{secs / max(n, 1):.1f} s per fit ==")
+        print(f"{'parameter':<20}{'chi2':>8}{'dof':>5}{'p':>8}{'cover50':>9}{'cover90':>9}"
+              f"{'(±se)':>8}   rank bins")
+        for k in rs[0]["theta"]:
+            L = rs[0]["ranks"][k][1]
+            ranks = np.array([r["ranks"][k][0] for r in rs])
+            # the L + 1 possible ranks spread over `bins` bins; expected counts from how
+            # many possible ranks fall in each bin
+            edges = np.linspace(0, L + 1, bins + 1)
+            counts, _ = np.histogram(ranks, bins=edges)
+            width, _ = np.histogram(np.arange(L + 1), bins=edges)
+            expected = n * width / (L + 1)
+            chi2, p = stats.chisquare(counts, expected)
+            c50 = np.mean([r["in50"][k] for r in rs])
+            c90 = np.mean([r["in90"][k] for r in rs])
+            se = math.sqrt(0.9 * 0.1 / n)
+            print(f"{k:<20}{chi2:8.2f}{bins - 1:5d}{p:8.3f}{c50:9.2f}{c90:9.2f}{se:8.2f}   "
+                  + " ".join(str(c) for c in counts))
+        if n < 5 * bins:
+            print(f"(only {n} replicates for {bins} bins: the chi-square approximation needs "
+                  f"about {5 * bins}; use --replicates 100 for the real check)")
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the calibration study and print its table.
+
+    Args:
+        argv: command-line arguments (default sys.argv[1:]).
+
+    Returns:
+        0.
+    """
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--replicates", type=int, default=100, help="replicates per family (≥ 100 "
+                    "for the real check)")
+    ap.add_argument("--families", nargs="+", default=["linear", "logistic"],
+                    choices=sorted(DESIGNS))
+    ap.add_argument("--draws", type=int, default=500, help="draws per chain (2 chains)")
+    ap.add_argument("--tune", type=int, default=500, help="warm-up per chain")
+    ap.add_argument("--thin", type=int, default=99, help="posterior draws L the rank is "
+                    "taken among (ranks 0..L)")
+    ap.add_argument("--bins", type=int, default=10, help="rank bins for the chi-square test")
+    ap.add_argument("--jobs", type=int, default=min(2, os.cpu_count() or 1),
+                    help="replicates fitted in parallel")
+    ap.add_argument("--seed", type=int, default=2018)
+    args = ap.parse_args(argv)
+    seeds = np.random.SeedSequence(args.seed).generate_state(args.replicates * len(args.families))
+    tasks = [(fam, rep, int(seeds[i * args.replicates + rep]), args.draws, args.tune, args.thin)
+             for i, fam in enumerate(args.families) for rep in range(args.replicates)]
+    t0 = time.perf_counter()
+    results = []
+    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        for k, res in enumerate(pool.map(one_replicate, tasks), 1):
+            results.append(res)
+            if k % max(1, len(tasks) // 20) == 0 or k == len(tasks):
+                print(f"  {k}/{len(tasks)} fits done ({time.perf_counter() - t0:.0f} s)",
+                      flush=True)
+    print(f"\nSimulation-based calibration (Talts et al. 2018, arXiv:1804.06788); "
+          f"{args.replicates} replicates per family, L = {args.thin} thinned draws, "
+          f"{args.bins} bins; total {time.perf_counter() - t0:.0f} s with {args.jobs} jobs")
+    summarise(results, args.bins)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

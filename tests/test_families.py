@@ -1,0 +1,217 @@
+"""Rate families: numpy and PyTensor agree, each formula matches its docstring, priors check.
+
+The formulas are the ones each family's docstring states (DESIGN §1 "Rate families");
+the checks below restate them independently, by hand, at chosen sizes.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import pytensor
+import pytensor.tensor as pt
+from scipy import stats
+
+from infer.errors import InputError
+from infer.families import (FAMILIES, Allee, DataScale, Linear, Logistic, PerSize, check_prior,
+                            get_family, scipy_prior)
+
+SCALE = DataScale(time_scale=1.0, count_scale=30.0, size_lo=3.0, size_hi=60.0)
+
+
+def _random_draws(family, n_draws: int, seed: int) -> dict[str, np.ndarray]:
+    """Parameter draws from the family's default priors (scipy, not PyMC)."""
+    rng = np.random.default_rng(seed)
+    draws = {}
+    for spec in family.free_parameters:
+        prior = scipy_prior(family.default_priors(SCALE)[spec.name])
+        shape = (n_draws,) + ((spec.length,) if spec.length else ())
+        draws[spec.name] = prior.rvs(size=shape, random_state=rng)
+    return draws
+
+
+FAMILY_CASES = [
+    Linear(), Linear(immigration=True), Logistic(), Logistic(immigration=True),
+    Allee(), Allee(immigration=True), PerSize(knots=5).adapt(SCALE),
+    PerSize(knots=[2.0, 10.0, 30.0, 70.0], immigration=True),
+]
+
+
+@pytest.mark.parametrize("family", FAMILY_CASES, ids=repr)
+def test_numpy_and_pytensor_rates_agree(family):
+    # common practice: one formula, two backends, same numbers
+    sizes = np.arange(0, 91)
+    draws = _random_draws(family, 4, seed=1)
+    birth, death = family.numpy_rates(draws, sizes)
+    assert birth.shape == death.shape == (4, sizes.size)
+    symbols = {s.name: (pt.dvector(s.name) if s.length else pt.dscalar(s.name))
+               for s in family.free_parameters}
+    bt, dt = family.pytensor_rates(symbols, sizes)
+    f = pytensor.function(list(symbols.values()), [bt, dt])
+    for i in range(4):
+        b_i, d_i = f(*[draws[k][i] for k in symbols])
+        np.testing.assert_allclose(b_i, birth[i], rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(d_i, death[i], rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("family", FAMILY_CASES, ids=repr)
+def test_rates_are_valid_and_continue_past_any_cap(family):
+    # common practice: rates are >= 0, no death from size 0 (μ_0 = 0), λ_0 = ι
+    sizes = np.arange(0, 5001)  # far beyond any cap the model would use
+    draws = _random_draws(family, 3, seed=2)
+    birth, death = family.numpy_rates(draws, sizes)
+    assert np.all(np.isfinite(birth)) and np.all(np.isfinite(death))
+    assert np.all(birth >= 0) and np.all(death >= 0)
+    np.testing.assert_array_equal(death[:, 0], 0.0)
+    expected_b0 = draws["immigration"] if family.immigration else np.zeros(3)
+    np.testing.assert_allclose(birth[:, 0], expected_b0, rtol=1e-14)
+    # the same formula evaluated on a short range and a long one gives the same values
+    b_short, d_short = family.numpy_rates(draws, sizes[:50])
+    np.testing.assert_array_equal(b_short, birth[:, :50])
+    np.testing.assert_array_equal(d_short, death[:, :50])
+
+
+def test_linear_formula():
+    # formula of the docstring: λ_n = b n + ι, μ_n = d n
+    fam = Linear(immigration=True)
+    n = np.array([0, 1, 7, 250])
+    b, d = fam.numpy_rates({"birth_rate": 0.4, "death_rate": 0.7, "immigration": 1.5}, n)
+    np.testing.assert_allclose(b[0], 0.4 * n + 1.5)
+    np.testing.assert_allclose(d[0], 0.7 * n)
+
+
+def test_logistic_formula_and_balance_at_carrying_capacity():
+    # docstring: λ_n = b n, μ_n = n (d + (b - d) n / K); births equal deaths at n = K
+    fam = Logistic()
+    bb, dd, K = 0.9, 0.3, 60.0
+    n = np.array([1.0, 20.0, 60.0, 61.0, 200.0])
+    b, d = fam.numpy_rates({"birth_rate": bb, "death_rate": dd, "carrying_capacity": K}, n)
+    np.testing.assert_allclose(b[0], bb * n)
+    np.testing.assert_allclose(d[0], n * (dd + (bb - dd) * n / K))
+    np.testing.assert_allclose(b[0, 2], d[0, 2], rtol=1e-14)        # at K
+    assert b[0, 1] > d[0, 1] and b[0, 3] < d[0, 3]                    # below / above K
+    # many draws at once, balance at each draw's own K
+    draws = _random_draws(fam, 50, seed=3)
+    Ks = np.round(draws["carrying_capacity"]).clip(1, 5000)
+    draws["carrying_capacity"] = Ks
+    b, d = fam.numpy_rates(draws, np.arange(0, 5001))
+    rows = np.arange(50)
+    kept = draws["birth_rate"] > draws["death_rate"]
+    np.testing.assert_allclose(b[rows, Ks.astype(int)][kept], d[rows, Ks.astype(int)][kept],
+                               rtol=1e-12)
+
+
+def test_logistic_death_clipped_when_birth_below_death():
+    # docstring: per-capita death max(0, d + (b - d) n/K) — zero from n = K d/(d - b) on
+    fam = Logistic()
+    b, d = fam.numpy_rates({"birth_rate": 0.2, "death_rate": 0.5, "carrying_capacity": 10.0},
+                           np.arange(0, 40))
+    threshold = 10.0 * 0.5 / (0.5 - 0.2)
+    n = np.arange(0, 40)
+    np.testing.assert_array_equal(d[0][n >= threshold], 0.0)
+    assert np.all(d[0][(n > 0) & (n < threshold)] > 0)
+
+
+def test_allee_formula_balance_and_threshold():
+    # docstring: b(n) = b n/(A + n), d(n) = d + c n with c = (b K/(A+K) - d)/K
+    fam = Allee()
+    bb, dd, K, A = 1.2, 0.3, 50.0, 8.0
+    n = np.arange(0, 200, dtype=float)
+    b, d = fam.numpy_rates({"birth_rate": bb, "death_rate": dd, "carrying_capacity": K,
+                            "allee_threshold": A}, n)
+    c = (bb * K / (A + K) - dd) / K
+    np.testing.assert_allclose(b[0], n * bb * n / (A + n))
+    np.testing.assert_allclose(d[0], n * (dd + c * n))
+    np.testing.assert_allclose(b[0, 50], d[0, 50], rtol=1e-13)      # balance at K
+    # per-capita birth is half of b at n = A
+    np.testing.assert_allclose(b[0, 8] / 8.0, bb / 2)
+    # deaths outrun births at small sizes (the Allee threshold), births win between
+    # the threshold and K, deaths win above K
+    assert d[0, 1] > b[0, 1]
+    assert b[0, 30] > d[0, 30]
+    assert d[0, 80] > b[0, 80]
+    # A -> 0 gives the logistic family
+    b0, d0 = fam.numpy_rates({"birth_rate": bb, "death_rate": dd, "carrying_capacity": K,
+                              "allee_threshold": 1e-12}, n)
+    bl, dl = Logistic().numpy_rates({"birth_rate": bb, "death_rate": dd,
+                                     "carrying_capacity": K}, n)
+    np.testing.assert_allclose(b0, bl, rtol=1e-9)
+    np.testing.assert_allclose(d0, dl, rtol=1e-9)
+
+
+def test_per_size_piecewise_linear_in_log_and_flat_outside():
+    # docstring: log b(n) linear between knots, constant beyond the first and last knot
+    fam = PerSize(knots=[5.0, 15.0, 25.0, 45.0])
+    xb = np.array([-1.0, 0.0, -0.5, -2.0])
+    xd = np.array([-2.0, -1.5, 0.5, 1.0])
+    n = np.arange(0, 100, dtype=float)
+    b, d = fam.numpy_rates({"log_birth_knots": xb, "log_death_knots": xd}, n)
+    pb = b[0, 1:] / n[1:]
+    pd_ = d[0, 1:] / n[1:]
+    np.testing.assert_allclose(np.log(pb), np.interp(n[1:], fam.knot_sizes, xb), rtol=1e-12)
+    np.testing.assert_allclose(np.log(pd_), np.interp(n[1:], fam.knot_sizes, xd), rtol=1e-12)
+    np.testing.assert_allclose(pb[n[1:] >= 45], math.exp(-2.0))  # flat beyond the last knot
+    np.testing.assert_allclose(pb[n[1:] <= 5], math.exp(-1.0))   # and below the first
+
+
+def test_per_size_random_walk_has_second_order_differences():
+    # docstring: x_j - 2 x_{j-1} + x_{j-2} = σ z_j, x_0 = level, x_1 = level + slope
+    fam = PerSize(knots=6).adapt(SCALE)
+    draws = _random_draws(fam, 5, seed=4)
+    knots = np.asarray(fam.knot_sizes)
+    b, _ = fam.numpy_rates(draws, knots)   # at the knot sizes, b(s_j) = exp(x_j)
+    x = np.log(b / knots)
+    level = draws["log_birth_level"]
+    np.testing.assert_allclose(x[:, 0], level)
+    np.testing.assert_allclose(x[:, 1] - x[:, 0], draws["log_birth_slope"])
+    second = x[:, 2:] - 2 * x[:, 1:-1] + x[:, :-2]
+    np.testing.assert_allclose(second, draws["birth_smoothness"][:, None]
+                               * draws["birth_innovations"], atol=1e-12)
+    # knots spread evenly over the observed sizes
+    np.testing.assert_allclose(fam.knot_sizes, np.linspace(3.0, 60.0, 6))
+
+
+def test_registry_and_unknown_family():
+    assert set(FAMILIES) == {"linear", "logistic", "allee", "per-size"}
+    assert isinstance(get_family("Logistic", immigration=True), Logistic)
+    assert get_family("per_size").name == "per-size"
+    with pytest.raises(InputError, match="linear, logistic, allee, per-size"):
+        get_family("gompertz")
+    with pytest.raises(InputError, match="options"):
+        get_family("linear", carrying=3)
+
+
+def test_priors_resolve_override_and_refuse_bad():
+    fam = Logistic(immigration=True)
+    pri = fam.resolve_priors({"birth_rate": {"dist": "gamma", "alpha": 2, "beta": 4}}, SCALE)
+    assert pri["birth_rate"] == {"dist": "gamma", "alpha": 2.0, "beta": 4.0}
+    assert pri["carrying_capacity"]["mu"] == pytest.approx(math.log(30.0))
+    with pytest.raises(InputError, match="no parameter"):
+        fam.resolve_priors({"allee_threshold": {"dist": "lognormal", "mu": 0, "sigma": 1}})
+    with pytest.raises(InputError, match="does not fit"):
+        fam.resolve_priors({"birth_rate": {"dist": "normal", "mu": 0, "sigma": 1}})
+    with pytest.raises(InputError, match="sigma"):
+        check_prior("x", {"dist": "lognormal", "mu": 0})
+    with pytest.raises(InputError, match="> 0"):
+        check_prior("x", {"dist": "lognormal", "mu": 0, "sigma": -1})
+    with pytest.raises(InputError, match="cannot be changed"):
+        PerSize(4).adapt(SCALE).resolve_priors(
+            {"birth_innovations": {"dist": "normal", "mu": 0, "sigma": 3}})
+
+
+def test_scipy_prior_matches_lognormal_density():
+    # lognormal density (common practice): exp(-(log x - mu)^2 / (2 s^2)) / (x s sqrt(2π))
+    spec = {"dist": "lognormal", "mu": -0.5, "sigma": 1.3}
+    x = np.array([0.05, 0.3, 1.0, 4.0])
+    dens = np.exp(-(np.log(x) + 0.5) ** 2 / (2 * 1.3 ** 2)) / (x * 1.3 * np.sqrt(2 * np.pi))
+    np.testing.assert_allclose(scipy_prior(spec).pdf(x), dens, rtol=1e-12)
+    assert isinstance(scipy_prior({"dist": "beta", "alpha": 2, "beta": 2}).dist,
+                      type(stats.beta))
+
+
+def test_describe_states_formula_and_priors():
+    fam = Allee(immigration=True)
+    text = fam.describe(fam.default_priors(SCALE))
+    assert "b·n/(A + n)" in text and "allee_threshold" in text and "lognormal" in text
+    assert "+ ι" in text
