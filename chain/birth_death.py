@@ -113,7 +113,8 @@ class BirthDeathChain(ChainBase):
             margin = max(margin, int(window_top) - start)
         while True:
             hi = min(self.cap, start + margin)
-            res = transition_rows(up, down, np.array([start], dtype=np.int64), times, lo=threshold, hi=hi)
+            res = transition_rows(up, down, np.array([start], dtype=np.int64), times, lo=threshold, hi=hi,
+                                  tail=tol * 1e-3, absolute=True)
             leaked = res.leaked[:, 0]
             if hi == self.cap or leaked.max() <= tol:
                 break
