@@ -101,17 +101,26 @@ def _poisson_weights(x, K, right_mass, w, left_cut):
     for k in range(mode + 1, K + 1):
         lr += math.log(x / k)
         w[k] = math.exp(lr)
+    cut = right_mass / (K + 1.0)
     lr = 0.0
+    first = 0  # weights below this index are 0 (cut off, or not worth computing)
+    left_rest = 0.0  # unscaled bound on the weights not computed
     for k in range(mode - 1, -1, -1):
         lr += math.log((k + 1.0) / x)
         w[k] = math.exp(lr)
+        if left_cut and w[k] < cut:
+            # left of the mode the weights fall by at least k/x per step: bound the rest
+            left_rest = w[k] / (1.0 - k / x) if k < x else w[k] * (k + 1.0)
+            for j in range(k + 1):
+                w[j] = 0.0
+            first = k + 1
+            break
     s = 0.0
-    for k in range(K + 1):
+    for k in range(first, K + 1):
         s += w[k]
     scale = (1.0 - right_mass) / s
-    cut = right_mass / (K + 1.0)
-    dropped = 0.0
-    for k in range(K + 1):
+    dropped = left_rest * scale
+    for k in range(first, K + 1):
         w[k] *= scale
         if w[k] == 0.0:
             dropped += _UNDERFLOW_UNIT

