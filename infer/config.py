@@ -2,7 +2,9 @@
 
 A settings file has the tables
 
-    [fit]       rates, immigration, chains, draws, tune, seed, max_size, detection, pooling
+    [fit]       rates, immigration, chains, draws, tune, seed, max_size, detection, pooling,
+                target_accept (NUTS; default 0.95, high because birth and death rates are
+                strongly correlated in the posterior and lower values give divergences)
     [priors.NAME]  dist and its parameters (see the family's describe())
     [derive]    horizons, thresholds, generation_time, credible_level, max_draws
     [scenario.NAME]  harvest_rate, harvest_quota, death_factor, birth_factor, added_immigration
@@ -21,7 +23,8 @@ from .errors import InputError
 from .scenarios import Scenario, scenarios_from_table
 
 _FIT_KEYS = {"rates": str, "immigration": bool, "chains": int, "draws": int, "tune": int,
-             "seed": int, "max_size": int, "detection": (float, int, str), "pooling": bool}
+             "seed": int, "max_size": int, "detection": (float, int, str), "pooling": bool,
+             "target_accept": float}
 _DERIVE_KEYS = {"horizons": list, "thresholds": list, "generation_time": (float, int),
                 "credible_level": float, "max_draws": int}
 
@@ -44,6 +47,7 @@ class RunSettings:
     max_size: int | None = None
     detection: float | str | None = None
     pooling: bool = False
+    target_accept: float = 0.95
     horizons: tuple[float, ...] = (10.0, 20.0, 50.0, 100.0)
     thresholds: tuple[int, ...] = (0,)
     generation_time: float | None = None
@@ -67,6 +71,8 @@ class RunSettings:
             raise bad("chains", f"chains must be >= 1, got {self.chains}")
         if self.draws < 10 or self.tune < 0:
             raise bad("draws", f"draws must be >= 10 and tune >= 0, got draws={self.draws}, tune={self.tune}")
+        if not 0.5 <= self.target_accept < 1:
+            raise bad("target_accept", f"target_accept must be in [0.5, 1), got {self.target_accept}")
         if self.max_size is not None and self.max_size < 2:
             raise bad("max_size", f"max_size must be >= 2, got {self.max_size}")
         if isinstance(self.detection, str) and self.detection != "estimate":

@@ -109,7 +109,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         result = fit_counts(data, family, chains=settings.chains, draws=settings.draws, tune=settings.tune,
                             seed=settings.seed, cap=settings.max_size, detection=settings.detection,
                             priors=settings.priors or None, pooling=settings.pooling, progressbar=progress,
-                            cores=cores)
+                            cores=cores, target_accept=settings.target_accept)
     # our own warnings (e.g. detection estimated without replicate surveys) go to the report
     messages = [str(w.message) for w in caught if w.category.__module__.startswith("infer")]
     messages += [m for m in result.messages if m not in messages]
