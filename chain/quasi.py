@@ -33,7 +33,9 @@ class QuasiStationary:
     Attributes:
         pmf: probabilities over sizes 0..N (pmf[0] = 0).
         log_pmf: their logs (-inf at 0).
-        decay_rate: θ; P(not extinct by t) ~ e^{−θt} from quasi-stationarity.
+        decay_rate: θ; P(not extinct by t) ~ e^{−θt} from quasi-stationarity (0.0 when θ is
+            below the float range; see ``log_decay_rate``).
+        log_decay_rate: log θ, finite even when θ underflows.
         mean: mean size under the distribution.
         converged: whether the inverse iteration met its tolerance.
         iterations: inverse iterations used.
@@ -45,11 +47,12 @@ class QuasiStationary:
     mean: float
     converged: bool
     iterations: int
+    log_decay_rate: float = float("nan")
 
     @property
     def mean_time_to_extinction(self) -> float:
         """1/θ: the mean time to extinction when starting from this distribution."""
-        return 1.0 / self.decay_rate
+        return float(np.exp(-self.log_decay_rate)) if np.isfinite(self.log_decay_rate) else 1.0 / self.decay_rate
 
 
 def quasi_stationary(up: np.ndarray, down: np.ndarray, *, rtol: float = 1e-13,
@@ -102,18 +105,20 @@ def quasi_stationary(up: np.ndarray, down: np.ndarray, *, rtol: float = 1e-13,
     # (2) positive inverse iteration in log space
     log_c = -log_mu[:m] - log_pit
     theta = np.nan
+    log_theta = np.nan
     converged = False
     it = 0
     for it in range(1, max_iter + 1):
         log_s = _suffix_logsumexp(log_x)
         log_new = log_pit + np.logaddexp.accumulate(log_c + log_s)
         log_norm = logsumexp(log_new)
-        new_theta = float(np.exp(-log_norm))
+        log_theta = -float(log_norm)
+        new_theta = float(np.exp(log_theta))
         log_new -= log_norm
         weight = log_new > np.log(1e-300)
         change = np.max(np.abs(log_new[weight] - log_x[weight]))
         log_x = log_new
-        if np.isfinite(theta) and change < rtol and abs(new_theta - theta) <= rtol * new_theta:
+        if np.isfinite(theta) and change < rtol and abs(new_theta - theta) <= rtol * new_theta and it > 1:
             theta = new_theta
             converged = True
             break
@@ -122,4 +127,4 @@ def quasi_stationary(up: np.ndarray, down: np.ndarray, *, rtol: float = 1e-13,
     log_pmf[1: m + 1] = log_x
     pmf = np.exp(log_pmf)
     return QuasiStationary(pmf, log_pmf, theta, float(np.dot(np.arange(n_cap + 1), pmf)),
-                           converged, it)
+                           converged, it, log_theta)

@@ -62,7 +62,8 @@ def log_product_terms(up: np.ndarray, down: np.ndarray) -> np.ndarray:
 
 
 def balance_residual(pmf: np.ndarray, up: np.ndarray, down: np.ndarray) -> float:
-    """Largest relative global-balance residual |inflow − outflow| / outflow over the sizes.
+    """Largest relative global-balance residual |inflow − outflow| / outflow over the sizes
+    whose probability is a normal float (> 1e-290).
 
     ``up`` at the last size is taken as 0 (the cap reflects / the truncation point).
     """
@@ -73,7 +74,8 @@ def balance_residual(pmf: np.ndarray, up: np.ndarray, down: np.ndarray) -> float
     inflow[1:] += pmf[:-1] * up[:-1]
     inflow[:-1] += pmf[1:] * down[1:]
     scale = np.maximum(out, inflow)
-    ok = scale > 0
+    # judge balance where the probabilities are normal floats: subnormal ones carry few digits
+    ok = (scale > 0) & (pmf > 1e-290)
     if not ok.any():
         return 0.0
     return float(np.max(np.abs(inflow[ok] - out[ok]) / scale[ok]))
