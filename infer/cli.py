@@ -13,7 +13,7 @@ from typing import Sequence
 
 EXIT_OK, EXIT_CHECK, EXIT_INPUT, EXIT_INTERRUPT = 0, 1, 2, 130
 REPO = Path(__file__).resolve().parent.parent
-DEMO_COUNTS = REPO / "example_counts" / "heron_fen.csv"
+DEMO_COUNTS = REPO / "example_counts" / "copper_tarn.csv"
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -111,14 +111,15 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from .config import RunSettings
     from .scenarios import Scenario
 
-    # 4 chains x 500 draws keep the demo to a few minutes while every ESS stays above 400
-    base = RunSettings(rates="logistic", immigration=True, generation_time=2.0, thresholds=(0, 10),
-                       chains=4, draws=500, tune=500, seed=args.seed if args.seed is not None else 20261201,
+    # A small isolated population in decline: extinction risk, criterion E and two remedies.
+    base = RunSettings(rates="linear", immigration=False, generation_time=2.0, thresholds=(0, 5),
+                       chains=4, draws=1000, tune=1000, seed=args.seed if args.seed is not None else 20261201,
                        horizons=(5.0, 10.0, 20.0, 50.0, 100.0),
-                       scenarios=(Scenario("cull 10%/yr", harvest_rate=0.1, description="remove 10% a year"),
+                       scenarios=(Scenario("protect adults", death_factor=0.85,
+                                           description="per-capita death rate cut by 15%"),
                                   Scenario("release 2/yr", added_immigration=2.0,
-                                           description="release two birds a year")))
-    _say(args, f"demo: {DEMO_COUNTS.name} (invented data; see example_counts/heron_fen.toml)")
+                                           description="two captive-bred adults released a year")))
+    _say(args, f"demo: {DEMO_COUNTS.name} (invented data; see {DEMO_COUNTS.with_suffix('.toml').name})")
     args.seed = None  # already in the base settings
     return _run_fit(args, DEMO_COUNTS, args.out, base)
 

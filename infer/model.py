@@ -266,6 +266,23 @@ def _check_exact_replicates(data: CountData) -> None:
                      "or a fixed detection probability")
 
 
+def _check_no_return_from_zero(data: CountData, family: RateFamily) -> None:
+    for s in data.series:
+        keep = ~np.all(np.isnan(s.counts), axis=1)
+        t = s.times[keep]
+        c = np.nanmax(s.counts[keep], axis=1)
+        bad = np.flatnonzero((c[:-1] == 0) & (c[1:] > 0))
+        if bad.size:
+            i = int(bad[0])
+            raise InputError(
+                f"site '{s.site}' is counted 0 at time {t[i]:g} and {int(c[i + 1])} at "
+                f"{t[i + 1]:g}: without immigration size 0 is absorbing, so these exact counts "
+                f"are impossible under the {family.name} family", source=data.source,
+                column="count",
+                hint="include immigration (e.g. get_family(name, immigration=True)), or model "
+                     "counting error with a detection probability")
+
+
 # --------------------------------------------------------------------------- the model
 @dataclass
 class CountModel:
@@ -463,12 +480,14 @@ def build_count_model(data: CountData, family: str | RateFamily, *, cap: int | N
         raise InputError(f"the maximum size must be a whole number >= 1, got {cap!r}",
                          source="--max-size")
     cap = int(cap)
-    if cap <= data.max_count:
-        raise CapTooSmallError(f"the maximum size {cap} is not above the largest count "
+    if cap < data.max_count:
+        raise CapTooSmallError(f"the maximum size {cap} is below the largest count "
                                f"{data.max_count}", source="--max-size",
                                hint=f"use at least {default_cap(data, det)} (the default)")
     if det is None:
         _check_exact_replicates(data)
+        if not fam.immigration:
+            _check_no_return_from_zero(data, fam)
     if det == "estimate" and not data.has_replicates:
         msg = ("detection is to be estimated but there are no replicate surveys: the "
                "detection probability is then barely identified and its prior "

@@ -100,6 +100,10 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     from .families import get_family
     from .fit import fit_counts
 
+    import os
+
+    if cores is None:
+        cores = max(1, min(settings.chains, os.cpu_count() or 1))  # chains in parallel on every core
     data = counts if isinstance(counts, CountData) else load_counts(counts)
     family = get_family(settings.rates, immigration=settings.immigration)
     log(f"fitting the {family.name} family to {data.n_counts} counts at {len(data.sites)} site(s) "
