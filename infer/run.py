@@ -59,6 +59,15 @@ def staged_folder(target: str | Path) -> Iterator[Path]:
     """
     target = Path(target).resolve()
     target.parent.mkdir(parents=True, exist_ok=True)
+    for stale in target.parent.glob(f".{target.name}.partial-*"):
+        # left by a run that was killed outright (no chance to clean up): remove if its process is gone
+        try:
+            pid = int(stale.name.rsplit("-", 1)[1])
+            os.kill(pid, 0)
+        except (ValueError, ProcessLookupError):
+            shutil.rmtree(stale, ignore_errors=True)
+        except PermissionError:
+            pass
     tmp = target.parent / f".{target.name}.partial-{os.getpid()}"
     if tmp.exists():
         shutil.rmtree(tmp)

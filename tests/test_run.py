@@ -28,6 +28,15 @@ def test_staged_folder_renames_only_when_complete(tmp_path):
     assert sorted(p.name for p in target.iterdir()) == ["b.txt"]
 
 
+def test_leftovers_of_a_killed_run_are_cleared(tmp_path):
+    stale = tmp_path / ".run.partial-999999999"  # a process id that cannot be running
+    stale.mkdir()
+    (stale / "posterior.nc").write_bytes(b"half")
+    with staged_folder(tmp_path / "run") as tmp:
+        (tmp / "a.txt").write_text("ok")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]
+
+
 def test_sha256_matches_hashlib_known_value(tmp_path):
     # FIPS 180-4 test vector "abc" (common practice)
     path = tmp_path / "abc"
