@@ -172,6 +172,21 @@ def test_per_size_random_walk_has_second_order_differences():
     np.testing.assert_allclose(fam.knot_sizes, np.linspace(3.0, 60.0, 6))
 
 
+def test_site_parameters_shift_growth_on_log_scale():
+    # partial pooling: b_site = b·exp(u); per-size: log b(s_j) + u; other parameters shared
+    draws = {"birth_rate": np.array([0.5, 0.8]), "death_rate": np.array([0.2, 0.3]),
+             "carrying_capacity": np.array([40.0, 50.0])}
+    u = np.array([0.3, -0.4])
+    site = Logistic().site_parameters(draws, u)
+    np.testing.assert_allclose(site["birth_rate"], draws["birth_rate"] * np.exp(u))
+    np.testing.assert_array_equal(site["death_rate"], draws["death_rate"])
+    ps = PerSize(knots=[1.0, 5.0, 9.0])
+    knots = {"log_birth_knots": np.zeros((2, 3)), "log_death_knots": np.ones((2, 3))}
+    site = ps.site_parameters(knots, u)
+    np.testing.assert_allclose(site["log_birth_knots"], u[:, None] * np.ones((2, 3)))
+    np.testing.assert_array_equal(site["log_death_knots"], knots["log_death_knots"])
+
+
 def test_registry_and_unknown_family():
     assert set(FAMILIES) == {"linear", "logistic", "allee", "per-size"}
     assert isinstance(get_family("Logistic", immigration=True), Logistic)

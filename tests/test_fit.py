@@ -27,8 +27,8 @@ from infer.errors import CapTooSmallError, InputError
 from infer.families import DataScale, Linear, Logistic, ParameterSpec, RateFamily
 from infer.fit import compare_families, fit_counts, save_posterior
 from infer.likelihood import log_likelihood
-from infer.model import (DetectionWarning, build_count_model, build_model, default_cap,
-                         normalise_detection)
+from infer.model import (DetectionWarning, PoolingWarning, build_count_model, build_model,
+                         default_cap, normalise_detection)
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "example_counts"
 # Short chains for the fast suite: the tolerances below use each run's own MCSE.
@@ -176,8 +176,8 @@ def test_linear_posterior_matches_grid(linear_data, linear_fit):
     top = coarse_u.size - 1
     lo_u, hi_u = coarse_u[max(keep[:, 0].min() - 1, 0)], coarse_u[min(keep[:, 0].max() + 1, top)]
     lo_v, hi_v = coarse_u[max(keep[:, 1].min() - 1, 0)], coarse_u[min(keep[:, 1].max() + 1, top)]
-    u = np.linspace(lo_u, hi_u, 60)
-    v = np.linspace(lo_v, hi_v, 60)
+    u = np.linspace(lo_u, hi_u, 50)
+    v = np.linspace(lo_v, hi_v, 50)
     lp = _linear_grid_logpost(linear_data, cap, u, v)
     w = np.exp(lp - lp.max())
     for name, axis, x in (("birth_rate", 1, u), ("death_rate", 0, v)):
@@ -272,7 +272,7 @@ def test_model_settings_are_checked():
     assert default_cap(data) == math.ceil(max(m + 3 * math.sqrt(m) + 15, 1.2 * m))
     assert default_cap(data, 0.5) == math.ceil(2 * m + 3 * math.sqrt(2 * m) + 15)
     with pytest.raises(CapTooSmallError):
-        build_model(data, "linear", cap=m)
+        build_model(data, "linear", cap=m - 1)
     with pytest.raises(CapTooSmallError):
         build_model(data, "linear", cap=m + 5, detection=0.5)
     with pytest.raises(InputError, match="no parameter"):
@@ -281,6 +281,17 @@ def test_model_settings_are_checked():
     with pytest.warns(DetectionWarning, match="no replicate surveys"):
         cm = build_count_model(data, "linear", detection="estimate")
     assert cm.messages and "detection" in cm.model.named_vars
+
+
+def test_return_from_zero_needs_immigration_and_pooling_needs_sites():
+    # common practice: without immigration (λ_0 = 0) size 0 is absorbing
+    data = CountData.single([0.0, 1.0, 2.0, 3.0], [3.0, 0.0, 2.0, 4.0])
+    with pytest.raises(InputError, match="immigration"):
+        build_model(data, "linear")
+    build_model(data, Linear(immigration=True))  # fine with immigration
+    with pytest.warns(PoolingWarning):
+        cm = build_count_model(data, Linear(immigration=True), pooling=True)
+    assert not cm.pooling and "site_offset" not in cm.model.named_vars
 
 
 def test_exact_counts_refuse_disagreeing_replicates():
@@ -328,8 +339,8 @@ def test_fast_end_to_end_fit_on_small_demo():
     # test's method) puts b and d themselves below the truth, so what must be recovered
     # here is the net growth rate b - d.
     truth = _truth("copper_tarn")
-    r = fit_counts(EXAMPLES / "copper_tarn.csv", "linear", seed=2, chains=2, draws=300,
-                   tune=300, progressbar=False, cores=2, n_predictive=50, n_prior=50)
+    r = fit_counts(EXAMPLES / "copper_tarn.csv", "linear", seed=2, chains=2, draws=250,
+                   tune=250, progressbar=False, cores=1, n_predictive=40, n_prior=40)
     post = r.idata.posterior
     net = (post["birth_rate"] - post["death_rate"]).values.reshape(-1)
     lo, hi = np.quantile(net, [0.05, 0.95])
@@ -362,6 +373,9 @@ def test_demo_recovery(name, family, options):
                           meta_truth["birth_rate"] - meta_truth["death_rate"])}
     else:
         checks = {k: (post[k].values, v) for k, v in meta_truth.items() if k in post}
+    if detection == "estimate":
+        with open(EXAMPLES / f"{name}.toml", "rb") as fh:
+            checks["detection"] = (post["detection"].values, tomllib.load(fh)["detection"])
     for k, (x, true) in checks.items():
         lo, hi = np.quantile(x.reshape(-1), [0.05, 0.95])
         assert lo < true < hi, (k, lo, true, hi)
