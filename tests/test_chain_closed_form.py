@@ -15,20 +15,10 @@ from scipy import linalg, stats
 
 from chain import BirthDeathChain, StepChain
 from chain.errors import ChainError
+from reference import generator
 
 
 # --------------------------------------------------------------------------- helpers
-def generator(birth: np.ndarray, death: np.ndarray) -> np.ndarray:
-    """Dense tridiagonal generator Q of a chain on 0..N; the cap reflects (no birth from N).
-
-    Common practice: Q[n, n+1] = λ_n, Q[n, n-1] = μ_n, rows sum to zero.
-    """
-    birth = np.asarray(birth, dtype=float).copy()
-    death = np.asarray(death, dtype=float)
-    birth[-1] = 0.0
-    q = np.diag(birth[:-1], 1) + np.diag(death[1:], -1)
-    q -= np.diag(q.sum(axis=1))
-    return q
 
 
 def step_matrix(p: np.ndarray, q: np.ndarray) -> np.ndarray:

@@ -15,18 +15,12 @@ from hypothesis import strategies as st
 from scipy import linalg, stats
 
 from chain import BirthDeathChain, StepChain
+from reference import generator
 
 SETTINGS = dict(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
 # --------------------------------------------------------------------------- helpers
-def generator(birth: np.ndarray, death: np.ndarray) -> np.ndarray:
-    """Dense generator on 0..N, reflecting cap (common practice: rows sum to 0)."""
-    birth = np.asarray(birth, dtype=float).copy()
-    birth[-1] = 0.0
-    q = np.diag(birth[:-1], 1) + np.diag(np.asarray(death, dtype=float)[1:], -1)
-    q -= np.diag(q.sum(axis=1))
-    return q
 
 
 def step_matrix(p: np.ndarray, q: np.ndarray) -> np.ndarray:

@@ -16,20 +16,9 @@ from infer.errors import (CapTooSmallError, CountValueError, InputError, Invalid
                           LikelihoodUnderflowError, ReplicateMismatchError)
 from infer.likelihood import (CountLikelihoodOp, evaluate_likelihood, log_likelihood,
                               log_likelihood_grad, pointwise_log_likelihood)
+from reference import generator
 
 
-def generator(birth: np.ndarray, death: np.ndarray) -> np.ndarray:
-    """Dense generator on 0..N with a reflecting cap (birth[N] ignored)."""
-    N = birth.size - 1
-    Q = np.zeros((N + 1, N + 1))
-    for i in range(N + 1):
-        lam = birth[i] if i < N else 0.0
-        if i < N:
-            Q[i, i + 1] = lam
-        if i > 0:
-            Q[i, i - 1] = death[i]
-        Q[i, i] = -(lam + death[i])
-    return Q
 
 
 def logistic(N: int, K: float, jitter: float = 0.0, seed: int = 0):

@@ -10,20 +10,9 @@ from scipy import stats
 from chain.errors import RateError
 from chain.uniformization import (hidden_forward_backward, pair_log_likelihood_grad,
                                   transition_rows)
+from reference import generator
 
 
-def generator(birth: np.ndarray, death: np.ndarray) -> np.ndarray:
-    """Dense generator on 0..N with a reflecting cap (birth[N] ignored)."""
-    N = birth.size - 1
-    Q = np.zeros((N + 1, N + 1))
-    for i in range(N + 1):
-        lam = birth[i] if i < N else 0.0
-        if i < N:
-            Q[i, i + 1] = lam
-        if i > 0:
-            Q[i, i - 1] = death[i]
-        Q[i, i] = -(lam + death[i])
-    return Q
 
 
 def logistic(N: int, K: float) -> tuple[np.ndarray, np.ndarray]:
