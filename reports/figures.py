@@ -445,7 +445,7 @@ def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
         ax2.set_title(f"Change from {_plain(scen[0])} (paired)")
         ax2.set_xlabel("horizon")
         ax2.set_ylabel("difference in probability")
-        ax2.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{100 * v:+.2g} pts" if v else "0"))
+        ax2.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{100 * v:+.3g} pts" if v else "0"))
         if len(scen) > 1:
             ax2.legend(loc="best")
         return fig
