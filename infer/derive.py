@@ -6,6 +6,12 @@ and the probability mass it puts above the cap; the quasi-stationary distributio
 its decay rate; the mean time to extinction from each site's last count; extinction and
 quasi-extinction curves over the horizons; and the IUCN criterion E category.
 
+With partial pooling (a ``site_offset`` in the posterior) each site has its own rates:
+the quantities indexed by site (mean time to extinction, extinction curves) use that
+site's rates, and the all-sites extinction probability multiplies the sites' own
+probabilities per draw. The quantities without a site (per-capita rates, stationary and
+quasi-stationary laws) then describe a typical site, the one with offset 0.
+
 Results are an xarray Dataset with dims (scenario, chain, draw, size, site, threshold,
 horizon), written to derived.nc.
 """
@@ -21,7 +27,11 @@ import numpy as np
 import xarray as xr
 
 from chain import BirthDeathChain, ChainError
+from .errors import InputError
 from .scenarios import BASELINE, Scenario
+
+#: The posterior variable of site offsets under partial pooling (see infer.model).
+SITE_OFFSET = "site_offset"
 
 #: IUCN (2012) Red List Categories and Criteria v3.1, criterion E, in order of severity.
 CATEGORIES = ("below VU", "VU", "EN", "CR")
@@ -99,8 +109,11 @@ def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray], scenar
     return True, above + st.tail_bound, pmf
 
 
-def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec) -> dict[str, Any]:
-    """All derived quantities of one chain (capped rates over 0..cap)."""
+def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec,
+              starts: Sequence[int] | None = None) -> dict[str, Any]:
+    """All derived quantities of one chain (capped rates over 0..cap), from ``starts``
+    (default: every site's last count)."""
+    starts = spec.starts if starts is None else starts
     out: dict[str, Any] = {}
     chain = BirthDeathChain(birth, death)
     try:
@@ -109,10 +122,12 @@ def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec) -> di
     except ChainError:
         out["quasi_pmf"] = np.full(spec.cap + 1, np.nan)
         out["quasi_decay_rate"] = out["quasi_mean"] = np.nan
-    with np.errstate(over="ignore"):
-        out["log10_mean_time"] = chain.mean_time_to_extinction(np.array(spec.starts), log=True) / math.log(10)
+    out["log10_mean_time"] = np.zeros(0)
+    if len(starts):
+        with np.errstate(over="ignore"):
+            out["log10_mean_time"] = chain.mean_time_to_extinction(np.array(starts), log=True) / math.log(10)
     times = np.asarray(spec.horizons, dtype=float)
-    prob = np.empty((len(spec.starts), len(spec.thresholds), times.size))
+    prob = np.empty((len(starts), len(spec.thresholds), times.size))
     bound = np.empty_like(prob)
     b0 = birth.copy()
     b0[0] = 0.0  # extinction curves: first passage to the threshold, with 0 absorbing
@@ -122,7 +137,7 @@ def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec) -> di
         # paths rarely go beyond the far upper tail of the quasi-stationary law: start the window there
         tail = np.cumsum(out["quasi_pmf"][::-1])[::-1]
         top = int(np.searchsorted(-tail, -1e-13)) + 5
-    for i, start in enumerate(spec.starts):
+    for i, start in enumerate(starts):
         for j, k in enumerate(spec.thresholds):
             curve = absorbing.extinction_curve(int(start), times, threshold=int(k), tol=spec.tol,
                                                window_top=top)
@@ -131,14 +146,29 @@ def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec) -> di
     return out
 
 
+_SITE_KEYS = ("log10_mean_time", "extinction_probability", "extinction_error_bound")
+
+
 def _work(args: tuple) -> list[dict[str, Any]]:
     family, params_list, scenario, spec = args
     results = []
     sizes = np.arange(spec.cap + 1)
     for params in params_list:
+        offsets = params.get(SITE_OFFSET)
+        params = {k: v for k, v in params.items() if k != SITE_OFFSET}
         b, d = family.numpy_rates(params, sizes)
         b, d = scenario.apply(b[0], d[0], sizes)
-        res = _one_draw(b, d, spec)
+        res = _one_draw(b, d, spec, starts=() if offsets is not None else None)
+        if offsets is not None:
+            # partial pooling: each site's own rates for what is indexed by site
+            parts = []
+            for i, start in enumerate(spec.starts):
+                own = family.site_parameters(params, offsets[:, i])
+                bi, di = family.numpy_rates(own, sizes)
+                bi, di = scenario.apply(bi[0], di[0], sizes)
+                parts.append(_one_draw(bi, di, spec, starts=(start,)))
+            for key in _SITE_KEYS:
+                res[key] = np.concatenate([part[key] for part in parts])
         exists, above, pmf = _stationary_beyond_cap(family, params, scenario, spec.cap)
         res["stationary_exists"] = exists
         res["stationary_mass_above_cap"] = above
@@ -148,13 +178,22 @@ def _work(args: tuple) -> list[dict[str, Any]]:
     return results
 
 
-def _draw_params(posterior: xr.Dataset, names: Sequence[str]) -> tuple[list[dict[str, np.ndarray]], int, int]:
+def _draw_params(posterior: xr.Dataset, names: Sequence[str],
+                 sites: Sequence[str]) -> tuple[list[dict[str, np.ndarray]], int, int]:
     n_chain, n_draw = posterior.sizes["chain"], posterior.sizes["draw"]
     flat = {}
     for name in names:
         if name in posterior:
             v = posterior[name].transpose("chain", "draw", ...).values
             flat[name] = v.reshape((n_chain * n_draw,) + v.shape[2:])
+    if SITE_OFFSET in posterior:
+        fitted = [str(x) for x in posterior[SITE_OFFSET].coords["site"].values]
+        missing = [s for s in sites if s not in fitted]
+        if missing:
+            raise InputError(f"the posterior has no site offset for {', '.join(missing)}",
+                             source="posterior", hint=f"its sites are {', '.join(fitted)}")
+        v = posterior[SITE_OFFSET].sel(site=list(sites)).transpose("chain", "draw", "site").values
+        flat[SITE_OFFSET] = v.reshape(n_chain * n_draw, len(sites))
     params = [{k: v[i:i + 1] for k, v in flat.items()} for i in range(n_chain * n_draw)]
     return params, n_chain, n_draw
 
@@ -166,7 +205,8 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
 
     Args:
         family: a rate family with ``numpy_rates(draws, sizes)`` and ``parameters``.
-        posterior: the posterior group (dims chain, draw, ...).
+        posterior: the posterior group (dims chain, draw, ...); with partial pooling it
+            holds ``site_offset`` (dims chain, draw, site) and each site gets its own rates.
         spec: what to compute (cap, sites and their last counts, horizons, thresholds).
         scenarios: baseline first, then the scenarios; all use the same draws.
         workers: processes to use (default: the machine's cores, at most 2 per 1000 draws).
@@ -174,9 +214,13 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
 
     Returns:
         xarray Dataset (see the module docstring for variables and dims).
+
+    Raises:
+        InputError: a pooled posterior without an offset for one of ``spec.sites``.
     """
     names = list(getattr(family, "parameters", [])) + [s.name for s in getattr(family, "free_parameters", [])]
-    params, n_chain, n_draw = _draw_params(posterior, list(dict.fromkeys(names)) or list(posterior.data_vars))
+    params, n_chain, n_draw = _draw_params(posterior, list(dict.fromkeys(names)) or list(posterior.data_vars),
+                                           spec.sites)
     n_total = len(params)
     if workers is None:
         workers = max(1, min(os.cpu_count() or 1, math.ceil(n_total / 500)))
@@ -231,7 +275,7 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
             "log10_mean_time_to_extinction": (dims_s + ("site",), gather("log10_mean_time")),
             "extinction_probability": (dims_s + ("site", "threshold", "horizon"), prob),
             "extinction_error_bound": (dims_s + ("site", "threshold", "horizon"), gather("extinction_error_bound")),
-            # sites share rates but are otherwise independent: all are extinct only if each is
+            # given the parameters the sites are independent: all are extinct only if each is
             "extinction_probability_all_sites": (dims_s + ("threshold", "horizon"), prob.prod(axis=3)),
         },
         coords=coords,

@@ -182,6 +182,15 @@ class _Report:
                                                           "summary.json when run.toml is missing).")
         return section("data", "2. Data and model fit", body)
 
+    def pooling_note(self) -> str:
+        """A paragraph saying which site the rate-only results describe (partial pooling only)."""
+        post = self.rf.idata.posterior if self.rf.idata is not None else None
+        if post is None or "site_offset" not in post:
+            return ""
+        return ("<p>Partial pooling: each site's birth rate is the shared rate times exp(site offset). The curves "
+                "and distributions here describe a typical site (offset 0); extinction probabilities and mean "
+                "times for each site use that site's own rates.</p>")
+
     # ---- 3. rates --------------------------------------------------------------------
     def rates_section(self) -> str:
         rf, d = self.rf, self.derived
@@ -197,6 +206,7 @@ class _Report:
                         "bands. Right: their difference; above 0 an animal adds more births than deaths. Shaded "
                         "background: the sizes the counts cover (outside it the rates are the family's formula "
                         "carried on, not data).")
+        body += self.pooling_note()
         iota = band(d["immigration"].sel(scenario=self.base), self.level)
         if float(iota.hi) > 0:
             body += (f"<p>Immigration ι (arrivals per time unit, independent of size): posterior mean "
@@ -221,6 +231,7 @@ class _Report:
                         f"Left: the long-run distribution of a site's size, over the draws where it exists (posterior "
                         f"mean, {self.pct} band). Right: the quasi-stationary distribution, the long-run distribution "
                         "of size given the population has not died out.")
+        body += self.pooling_note()
         lv = self.level
         exists = d["stationary_exists"]
         rows: list[list[Any]] = [["P(a stationary distribution exists)", Cell(format_probability(float(exists.mean())), "num"),

@@ -76,6 +76,42 @@ def test_push_forward_equals_chain_solvers_for_fixed_draws():
     assert sum(s["cull"]["iucn_category_probability"].values()) == pytest.approx(1.0)
 
 
+def test_partial_pooling_gives_each_site_its_own_rates():
+    # With site offsets u_s the site's birth rate is b·exp(u_s) (infer.families.RateFamily.site_parameters);
+    # the site-indexed results must equal the chain solvers run on that site's own rates.
+    fam = get_family("logistic", immigration=False)
+    post = _posterior({"birth_rate": [0.9, 0.7], "death_rate": [0.3, 0.35], "carrying_capacity": [30.0, 25.0]})
+    offsets = np.array([[[0.4, -0.5], [-0.2, 0.1]]])  # (chain, draw, site)
+    post["site_offset"] = (("chain", "draw", "site"), offsets)
+    post = post.assign_coords(site=["south", "north"])
+    cap = 90
+    # spec sites in a different order from the posterior's: matched by name
+    spec = PushForwardSpec(cap=cap, sites=("north", "south"), starts=(12, 20), horizons=(5.0, 20.0), thresholds=(0,))
+    ds = push_forward(fam, post, spec, [BASELINE], workers=1)
+    sizes = np.arange(cap + 1)
+    for i in range(2):
+        shared = {k: post[k].values[0, i:i + 1] for k in ("birth_rate", "death_rate", "carrying_capacity")}
+        for site, start in zip(spec.sites, spec.starts):
+            u = float(post["site_offset"].sel(site=site).values[0, i])
+            own = dict(shared, birth_rate=shared["birth_rate"] * np.exp(u))
+            b, d = fam.numpy_rates(own, sizes)
+            closed = BirthDeathChain(b[0], d[0])
+            curve = closed.extinction_curve(start, spec.horizons)
+            got = ds["extinction_probability"].sel(scenario="baseline", chain=0, draw=i, site=site, threshold=0)
+            np.testing.assert_allclose(got.values, curve.probability, rtol=1e-8, atol=1e-15)
+            lt = closed.mean_time_to_extinction([start], log=True)[0] / np.log(10)
+            assert ds["log10_mean_time_to_extinction"].sel(scenario="baseline", chain=0, draw=i,
+                                                           site=site) == pytest.approx(lt, rel=1e-12)
+        # rate-only quantities describe the typical site (offset 0)
+        b, d = fam.numpy_rates(shared, sizes)
+        qs = BirthDeathChain(b[0], d[0]).quasi_stationary()
+        assert ds["quasi_decay_rate"].sel(scenario="baseline", chain=0, draw=i) == pytest.approx(qs.decay_rate, rel=1e-9)
+    allp = ds["extinction_probability_all_sites"].values
+    np.testing.assert_allclose(allp, ds["extinction_probability"].prod("site").values, rtol=1e-14)
+    with pytest.raises(InputError, match="no site offset for east"):
+        push_forward(fam, post, PushForwardSpec(cap=cap, sites=("east",), starts=(5,), horizons=(5.0,)), workers=1)
+
+
 def test_no_immigration_means_no_stationary_law_and_supercritical_linear_is_unregulated():
     lin = get_family("linear", immigration=True)
     post = _posterior({"birth_rate": [0.5, 0.6], "death_rate": [0.4, 0.3], "immigration": [0.5, 0.5]})
