@@ -158,6 +158,80 @@ def _step_backward(g, h, p, q, d, W):
 
 
 @njit(cache=True, nogil=True, fastmath=_FM)
+def _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, gb, gd, top_is_cap, bottom_is_zero):
+    """The backward sweep of the adjoint: accumulate Σ_a α_a[i] γ_a[j] into the rate gradients.
+
+    ``store`` holds α_0..α_K (rows of length W); ``gam`` enters as γ_{K-1} and is overwritten.
+    ∂/∂λ_j: B[j, j+1] += dλ/Λ, B[j, j] -= dλ/Λ; ∂/∂μ_j: B[j, j-1] += dμ/Λ, B[j, j] -= dμ/Λ
+    (the caller divides by Λ). One fused pass per step does both gradients and γ_{a-1} = B γ_a + w_a g
+    for the interior sizes, so each step reads α_a and γ_a once.
+    """
+    nz = 0
+    for j in range(W):
+        if seed[j] != 0.0:
+            nz += 1
+    idx = np.empty(nz, dtype=np.int64)
+    nz = 0
+    for j in range(W):
+        if seed[j] != 0.0:
+            idx[nz] = j
+            nz += 1
+    if W < 3:
+        for a_ in range(K - 1, -1, -1):
+            base = a_ * W
+            for j in range(W - 1):
+                gb[j] += store[base + j] * (gam[j + 1] - gam[j])
+            for j in range(1, W):
+                gd[j] += store[base + j] * (gam[j - 1] - gam[j])
+            if not top_is_cap:
+                gb[W - 1] -= store[base + W - 1] * gam[W - 1]
+            if not bottom_is_zero:
+                gd[0] -= store[base] * gam[0]
+            if a_ > 0:
+                _step_backward(gam, gam2, p, q, d, W)
+                wa = w[a_]
+                for j in range(W):
+                    gam[j] = gam2[j] + wa * seed[j]
+        return
+    cur = gam
+    nxt = gam2
+    for a_ in range(K - 1, -1, -1):
+        base = a_ * W
+        # edges: size lo (j = 0) and size hi (j = W - 1)
+        s0 = store[base]
+        g0 = cur[0]
+        gb[0] += s0 * (cur[1] - g0)
+        if not bottom_is_zero:
+            gd[0] -= s0 * g0
+        sl = store[base + W - 1]
+        gl = cur[W - 1]
+        gd[W - 1] += sl * (cur[W - 2] - gl)
+        if not top_is_cap:
+            gb[W - 1] -= sl * gl
+        if a_ == 0:
+            for j in range(1, W - 1):
+                sj = store[base + j]
+                gj = cur[j]
+                gb[j] += sj * (cur[j + 1] - gj)
+                gd[j] += sj * (cur[j - 1] - gj)
+            break
+        nxt[0] = d[0] * g0 + p[0] * cur[1]
+        nxt[W - 1] = d[W - 1] * gl + q[W - 1] * cur[W - 2]
+        for j in range(1, W - 1):
+            sj = store[base + j]
+            gj = cur[j]
+            up = cur[j + 1]
+            dn = cur[j - 1]
+            gb[j] += sj * (up - gj)
+            gd[j] += sj * (dn - gj)
+            nxt[j] = d[j] * gj + p[j] * up + q[j] * dn
+        wa = w[a_]
+        for k in range(nz):
+            nxt[idx[k]] += wa * seed[idx[k]]
+        cur, nxt = nxt, cur
+
+
+@njit(cache=True, nogil=True, fastmath=_FM)
 def _rows_kernel(birth, death, N, lo, hi, starts, xs, Ks, wts, rows, leaked):
     W = hi - lo + 1
     p = np.empty(W)
@@ -313,25 +387,8 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
             continue
         for j in range(W):
             gam[j] = w[K] * seed[j]  # γ_{K-1}
-        top_is_cap = hi == N
-        bottom_is_zero = lo == 0
-        for a_ in range(K - 1, -1, -1):
-            base = a_ * W
-            # ∂/∂λ_j: B[j, j+1] += dλ/Λ, B[j, j] -= dλ/Λ; ∂/∂μ_j: B[j, j-1] += dμ/Λ, B[j, j] -= dμ/Λ.
-            # Interior sizes in branch-free loops (they vectorise); the window edges after.
-            for j in range(W - 1):
-                out_gb[off + j] += store[base + j] * (gam[j + 1] - gam[j])
-            for j in range(1, W):
-                out_gd[off + j] += store[base + j] * (gam[j - 1] - gam[j])
-            if not top_is_cap:
-                out_gb[off + W - 1] -= store[base + W - 1] * gam[W - 1]
-            if not bottom_is_zero:
-                out_gd[off] -= store[base] * gam[0]
-            if a_ > 0:
-                _step_backward(gam, gam2, p, q, d, W)
-                wa = w[a_]
-                for j in range(W):
-                    gam[j] = gam2[j] + wa * seed[j]
+        _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, out_gb[off:off + W],
+                       out_gd[off:off + W], hi == N, lo == 0)
         inv = 1.0 / Lam
         for j in range(W):
             out_gb[off + j] *= inv
