@@ -18,12 +18,13 @@ it is still a draw from the fitted model), exact event-by-event paths
 (chain.BirthDeathChain.simulate).
 Priors are fixed (not scaled to each data set) and given to the fit explicitly.
 
-Run:  .venv/bin/python bench/sbc_bench.py --replicates 100        (long: ~1 h on 2 cores)
+Run:  .venv/bin/python bench/sbc_bench.py --replicates 100 --record sbc.jsonl   (long; resumable)
       .venv/bin/python bench/sbc_bench.py --replicates 8 --draws 200   (a quick look)
 """
 from __future__ import annotations
 
 import argparse
+import json
 import math
 import os
 import sys
@@ -78,8 +79,8 @@ def one_replicate(args: tuple) -> dict:
         r = fit_counts(data, fam, chains=2, draws=draws, tune=tune, cap=design["cap"],
                        priors=design["priors"], seed=int(rng.integers(2**31)),
                        progressbar=False, cores=1, n_predictive=20, n_prior=20)
-    out = {"family": family_name, "rep": rep, "seconds": time.perf_counter() - t0,
-           "passed": r.passed, "final_count": int(path[-1]), "theta": theta, "ranks": {},
+    out = {"task": list(args), "family": family_name, "rep": rep, "seconds": time.perf_counter() - t0,
+           "passed": bool(r.passed), "final_count": int(path[-1]), "theta": theta, "ranks": {},
            "in50": {}, "in90": {}}
     for k, true in theta.items():
         x = r.idata.posterior[k].values.reshape(-1)
@@ -148,17 +149,33 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--jobs", type=int, default=min(2, os.cpu_count() or 1),
                     help="replicates fitted in parallel")
     ap.add_argument("--seed", type=int, default=2018)
+    ap.add_argument("--record", type=Path, default=None,
+                    help="JSON-lines file: each finished replicate is appended, and replicates "
+                         "already recorded with the same settings are reused (resume a long run)")
     args = ap.parse_args(argv)
     seeds = np.random.SeedSequence(args.seed).generate_state(args.replicates * len(args.families))
     tasks = [(fam, rep, int(seeds[i * args.replicates + rep]), args.draws, args.tune, args.thin)
              for i, fam in enumerate(args.families) for rep in range(args.replicates)]
     t0 = time.perf_counter()
     results = []
+    done: dict[tuple, dict] = {}
+    if args.record is not None and args.record.exists():
+        for line in args.record.read_text().splitlines():
+            if line.strip():
+                rec = json.loads(line)
+                done[tuple(rec["task"])] = rec
+    todo = [t for t in tasks if tuple(t) not in done]
+    results = [done[tuple(t)] for t in tasks if tuple(t) in done]
+    if results:
+        print(f"  reusing {len(results)} recorded replicates from {args.record}", flush=True)
     with ProcessPoolExecutor(max_workers=args.jobs) as pool:
-        for k, res in enumerate(pool.map(one_replicate, tasks), 1):
+        for k, res in enumerate(pool.map(one_replicate, todo), 1):
             results.append(res)
-            if k % max(1, len(tasks) // 20) == 0 or k == len(tasks):
-                print(f"  {k}/{len(tasks)} fits done ({time.perf_counter() - t0:.0f} s)",
+            if args.record is not None:
+                with open(args.record, "a") as fh:
+                    fh.write(json.dumps(res) + "\n")
+            if k % max(1, len(todo) // 20) == 0 or k == len(todo):
+                print(f"  {k}/{len(todo)} fits done ({time.perf_counter() - t0:.0f} s)",
                       flush=True)
     print(f"\nSimulation-based calibration (Talts et al. 2018, arXiv:1804.06788); "
           f"{args.replicates} replicates per family, L = {args.thin} thinned draws, "
