@@ -158,13 +158,17 @@ def _step_backward(g, h, p, q, d, W):
 
 
 @njit(cache=True, nogil=True, fastmath=_FM)
-def _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, gb, gd, top_is_cap, bottom_is_zero):
-    """The backward sweep of the adjoint: accumulate Σ_a α_a[i] γ_a[j] into the rate gradients.
+def _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, gb, gd, top_is_cap, bottom_is_zero,
+                   want_grad, finish):
+    """The backward sweep of the adjoint: γ_{a-1} = B γ_a + w_a g from γ_{K-1} down, and, with
+    ``want_grad``, Σ_a α_a[i] γ_a[j] accumulated into the rate gradients ``gb``, ``gd``.
 
-    ``store`` holds α_0..α_K (rows of length W); ``gam`` enters as γ_{K-1} and is overwritten.
-    ∂/∂λ_j: B[j, j+1] += dλ/Λ, B[j, j] -= dλ/Λ; ∂/∂μ_j: B[j, j-1] += dμ/Λ, B[j, j] -= dμ/Λ
-    (the caller divides by Λ). One fused pass per step does both gradients and γ_{a-1} = B γ_a + w_a g
-    for the interior sizes, so each step reads α_a and γ_a once.
+    ``store`` holds α_0..α_K (rows of length W; read only with ``want_grad``); ``gam`` enters
+    as γ_{K-1} = w_K g, and ``gam``/``gam2`` are overwritten. ∂/∂λ_j: B[j, j+1] += dλ/Λ,
+    B[j, j] -= dλ/Λ; ∂/∂μ_j: B[j, j-1] += dμ/Λ, B[j, j] -= dμ/Λ (the caller divides by Λ).
+    With ``finish`` the last step is taken too, so the returned vector is P g = Σ_k w_k B^k g;
+    otherwise the returned vector is γ_0. One fused pass per step does both gradients and the
+    next γ for the interior sizes, so each step reads α_a and γ_a once.
     """
     nz = 0
     for j in range(W):
@@ -176,59 +180,68 @@ def _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, gb, gd, top_is_cap,
         if seed[j] != 0.0:
             idx[nz] = j
             nz += 1
+    cur = gam
+    nxt = gam2
     if W < 3:
         for a_ in range(K - 1, -1, -1):
             base = a_ * W
-            for j in range(W - 1):
-                gb[j] += store[base + j] * (gam[j + 1] - gam[j])
-            for j in range(1, W):
-                gd[j] += store[base + j] * (gam[j - 1] - gam[j])
-            if not top_is_cap:
-                gb[W - 1] -= store[base + W - 1] * gam[W - 1]
-            if not bottom_is_zero:
-                gd[0] -= store[base] * gam[0]
-            if a_ > 0:
-                _step_backward(gam, gam2, p, q, d, W)
+            if want_grad:
+                for j in range(W - 1):
+                    gb[j] += store[base + j] * (cur[j + 1] - cur[j])
+                for j in range(1, W):
+                    gd[j] += store[base + j] * (cur[j - 1] - cur[j])
+                if not top_is_cap:
+                    gb[W - 1] -= store[base + W - 1] * cur[W - 1]
+                if not bottom_is_zero:
+                    gd[0] -= store[base] * cur[0]
+            if a_ > 0 or finish:
+                _step_backward(cur, nxt, p, q, d, W)
                 wa = w[a_]
                 for j in range(W):
-                    gam[j] = gam2[j] + wa * seed[j]
-        return
-    cur = gam
-    nxt = gam2
+                    nxt[j] += wa * seed[j]
+                cur, nxt = nxt, cur
+        return cur
     for a_ in range(K - 1, -1, -1):
         base = a_ * W
-        # edges: size lo (j = 0) and size hi (j = W - 1)
-        s0 = store[base]
         g0 = cur[0]
-        gb[0] += s0 * (cur[1] - g0)
-        if not bottom_is_zero:
-            gd[0] -= s0 * g0
-        sl = store[base + W - 1]
         gl = cur[W - 1]
-        gd[W - 1] += sl * (cur[W - 2] - gl)
-        if not top_is_cap:
-            gb[W - 1] -= sl * gl
-        if a_ == 0:
-            for j in range(1, W - 1):
-                sj = store[base + j]
-                gj = cur[j]
-                gb[j] += sj * (cur[j + 1] - gj)
-                gd[j] += sj * (cur[j - 1] - gj)
+        if want_grad:
+            # edges: size lo (j = 0) and size hi (j = W - 1)
+            s0 = store[base]
+            gb[0] += s0 * (cur[1] - g0)
+            if not bottom_is_zero:
+                gd[0] -= s0 * g0
+            sl = store[base + W - 1]
+            gd[W - 1] += sl * (cur[W - 2] - gl)
+            if not top_is_cap:
+                gb[W - 1] -= sl * gl
+        if a_ == 0 and not finish:
+            if want_grad:
+                for j in range(1, W - 1):
+                    sj = store[base + j]
+                    gj = cur[j]
+                    gb[j] += sj * (cur[j + 1] - gj)
+                    gd[j] += sj * (cur[j - 1] - gj)
             break
         nxt[0] = d[0] * g0 + p[0] * cur[1]
         nxt[W - 1] = d[W - 1] * gl + q[W - 1] * cur[W - 2]
-        for j in range(1, W - 1):
-            sj = store[base + j]
-            gj = cur[j]
-            up = cur[j + 1]
-            dn = cur[j - 1]
-            gb[j] += sj * (up - gj)
-            gd[j] += sj * (dn - gj)
-            nxt[j] = d[j] * gj + p[j] * up + q[j] * dn
+        if want_grad:
+            for j in range(1, W - 1):
+                sj = store[base + j]
+                gj = cur[j]
+                up = cur[j + 1]
+                dn = cur[j - 1]
+                gb[j] += sj * (up - gj)
+                gd[j] += sj * (dn - gj)
+                nxt[j] = d[j] * gj + p[j] * up + q[j] * dn
+        else:
+            for j in range(1, W - 1):
+                nxt[j] = d[j] * cur[j] + p[j] * cur[j + 1] + q[j] * cur[j - 1]
         wa = w[a_]
         for k in range(nz):
             nxt[idx[k]] += wa * seed[idx[k]]
         cur, nxt = nxt, cur
+    return cur
 
 
 @njit(cache=True, nogil=True, fastmath=_FM)
@@ -388,7 +401,7 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
         for j in range(W):
             gam[j] = w[K] * seed[j]  # γ_{K-1}
         _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, out_gb[off:off + W],
-                       out_gd[off:off + W], hi == N, lo == 0)
+                       out_gd[off:off + W], hi == N, lo == 0, True, False)
         inv = 1.0 / Lam
         for j in range(W):
             out_gb[off + j] *= inv
@@ -451,6 +464,8 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
     row = np.empty(maxW)
     gam = np.empty(maxW)
     gam2 = np.empty(maxW)
+    gtmp = np.empty(maxW)
+    dtmp = np.empty(maxW)
     seed = np.empty(maxW)
     phi = np.empty(log_emit.shape[0])   # normalised forward vectors, layout of log_emit
     emit = np.empty(log_emit.shape[0])  # exp(log_emit - max) per occasion
@@ -572,36 +587,18 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
             # backward sweep: γ_{K-1} = w_K seed, ..., β = w_0 seed + B γ_0
             for j in range(W):
                 gam[j] = w[K] * seed[j]
-            top_is_cap = hi == N
-            bottom_is_zero = lo == 0
-            inv = 1.0 / Lam
-            for a_ in range(K - 1, -1, -1):
-                if want_grad:
-                    base = a_ * W
-                    for j in range(W):
-                        al = store[base + j]
-                        if al == 0.0:
-                            continue
-                        gj = gam[j]
-                        n = lo + j
-                        if j < W - 1:
-                            out_gb[s, n] += al * (gam[j + 1] - gj) * inv
-                        elif not top_is_cap:
-                            out_gb[s, n] -= al * gj * inv
-                        if j > 0:
-                            out_gd[s, n] += al * (gam[j - 1] - gj) * inv
-                        elif not bottom_is_zero:
-                            out_gd[s, n] -= al * gj * inv
-                _step_backward(gam, gam2, p, q, d, W)
-                wa = w[a_]
+                gtmp[j] = 0.0
+                dtmp[j] = 0.0
+            beta = _adjoint_sweep(store, W, K, w, seed, p, q, d, gam, gam2, gtmp, dtmp,
+                                  hi == N, lo == 0, want_grad, True)
+            if want_grad:
+                inv = 1.0 / Lam
                 for j in range(W):
-                    gam[j] = gam2[j] + wa * seed[j]
-            if K == 0:
-                for j in range(W):
-                    gam[j] = w[0] * seed[j]
-            # gam now holds P seed = β̂_{i-1} on the window
+                    out_gb[s, lo + j] += gtmp[j] * inv
+                    out_gd[s, lo + j] += dtmp[j] * inv
+            # beta holds P seed = β̂_{i-1} on the window
             for k in range(le_ptr[i - 1], le_ptr[i]):
-                out_marg[k] = gam[off_prev + k - le_ptr[i - 1]]
+                out_marg[k] = beta[off_prev + k - le_ptr[i - 1]]
         for k in range(le_ptr[i0], le_ptr[i1]):
             out_marg[k] *= phi[k]
 

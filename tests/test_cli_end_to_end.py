@@ -112,3 +112,27 @@ def test_bad_counts_exit_2_and_write_nothing(tmp_path, capsys):
 def test_unknown_family_exit_2(counts_csv, tmp_path, capsys):
     assert main(["fit", str(counts_csv), "--rates", "gompertz", "--out", str(tmp_path / "x"), *FAST]) == 2
     assert "gompertz" in capsys.readouterr().err
+
+
+def test_pooled_two_site_run_uses_each_sites_rates(tmp_path):
+    # input data only: two invented ponds simulated with different birth rates
+    frames = []
+    for site, b, seed in (("upper pond", 0.55, 1), ("lower pond", 0.35, 2)):
+        chain = BirthDeathChain(lambda n, b=b: b * n + 1.0, lambda n: 0.45 * n)
+        sizes = chain.simulate(10, np.arange(8.0), seed=seed)[0]
+        frames.append(pd.DataFrame({"site": site, "time": np.arange(2010, 2018), "count": sizes}))
+    csv = tmp_path / "ponds.csv"
+    pd.concat(frames).to_csv(csv, index=False)
+    cfg = tmp_path / "run.toml"
+    cfg.write_text("[fit]\nimmigration = true\npooling = true\n")
+    out = tmp_path / "pooled"
+    code = main(["fit", str(csv), "--rates", "linear", "--config", str(cfg), "--out", str(out),
+                 "--chains", "2", "--draws", "100", "--tune", "100", "--max-size", "80", "--seed", "3", "--quiet"])
+    assert code in (0, 1)
+    post = az.from_netcdf(out / "posterior.nc").posterior
+    derived = xr.open_dataset(out / "derived.nc")
+    assert sorted(post["site_offset"].coords["site"].values) == ["lower pond", "upper pond"]
+    # the all-sites probability is the product of the sites' own probabilities (independent given the rates)
+    np.testing.assert_allclose(derived["extinction_probability_all_sites"].values,
+                               derived["extinction_probability"].prod("site").values, rtol=1e-12)
+    assert "Partial pooling" in (out / "report.html").read_text()
