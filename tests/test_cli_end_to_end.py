@@ -127,7 +127,7 @@ def test_pooled_two_site_run_uses_each_sites_rates(tmp_path):
     cfg.write_text("[fit]\nimmigration = true\npooling = true\n")
     out = tmp_path / "pooled"
     code = main(["fit", str(csv), "--rates", "linear", "--config", str(cfg), "--out", str(out),
-                 "--chains", "2", "--draws", "100", "--tune", "100", "--max-size", "80", "--seed", "3", "--quiet"])
+                 "--chains", "2", "--draws", "50", "--tune", "50", "--max-size", "60", "--seed", "3", "--quiet"])
     assert code in (0, 1)
     post = az.from_netcdf(out / "posterior.nc").posterior
     derived = xr.open_dataset(out / "derived.nc")
