@@ -114,7 +114,7 @@ def run_one(name: str, *, chains: int, draws: int, tune: int, cores: int, seed: 
             "ess_tail_per_s": min_t / sampling,
             "s_per_grad": sampling * min(cores, chains) / max(est_total, 1),
             "divergences": int(idata.sample_stats["diverging"].sum()),
-            "passed": passed, "cap_ok": cap_ok}
+            "passed": passed, "cap_ok": cap_ok, "idata": idata}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -134,18 +134,27 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--cores", type=int, default=2)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--no-baseline", action="store_true")
+    ap.add_argument("--save", type=Path, default=None,
+                    help="folder to write each fit's InferenceData to (NAME.nc), to inspect "
+                         "divergences or slow chains afterwards")
     args = ap.parse_args(argv)
     rows = []
     for name in args.sets:
         print(f"fitting {name} ...", flush=True)
         rows.append(run_one(name, chains=args.chains, draws=args.draws, tune=args.tune,
                             cores=args.cores, seed=args.seed))
+        if args.save is not None:
+            args.save.mkdir(parents=True, exist_ok=True)
+            rows[-1].pop("idata").to_netcdf(args.save / f"{name}.nc")
+        else:
+            rows[-1].pop("idata")
     base = None
     if not args.no_baseline:
         print(f"baseline: {args.sets[0]} with PyMC's default jitter+adapt_diag ...", flush=True)
         base = run_one(args.sets[0], chains=args.chains, draws=args.draws, tune=args.tune,
                        cores=args.cores, seed=args.seed, init="jitter+adapt_diag",
                        target_accept=0.8)
+        base.pop("idata")
     print(f"\n{args.chains} chains x {args.draws} draws (+{args.tune} warm-up), "
           f"{args.cores} cores")
     head = (f"{'data set':<13}{'family':<10}{'detect':>9}{'wall s':>8}{'NUTS s':>8}"
