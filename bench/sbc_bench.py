@@ -19,6 +19,8 @@ it is still a draw from the fitted model), exact event-by-event paths
 Priors are fixed (not scaled to each data set) and given to the fit explicitly.
 
 Run:  .venv/bin/python bench/sbc_bench.py --replicates 100 --record sbc.jsonl   (long; resumable)
+      .venv/bin/python bench/sbc_bench.py --draws 300 --tune 300 --record bench/results/sbc_300x2.jsonl
+          (re-prints the table of the recorded 100 + 100 replicates without fitting again)
       .venv/bin/python bench/sbc_bench.py --replicates 8 --draws 200   (a quick look)
 """
 from __future__ import annotations
