@@ -143,11 +143,10 @@ def main(argv: list[str] | None = None) -> int:
         print(f"fitting {name} ...", flush=True)
         rows.append(run_one(name, chains=args.chains, draws=args.draws, tune=args.tune,
                             cores=args.cores, seed=args.seed))
+        idata = rows[-1].pop("idata")
         if args.save is not None:
             args.save.mkdir(parents=True, exist_ok=True)
-            rows[-1].pop("idata").to_netcdf(args.save / f"{name}.nc")
-        else:
-            rows[-1].pop("idata")
+            idata.to_netcdf(args.save / f"{name}.nc")
     base = None
     if not args.no_baseline:
         print(f"baseline: {args.sets[0]} with PyMC's default jitter+adapt_diag ...", flush=True)

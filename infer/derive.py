@@ -27,11 +27,10 @@ import numpy as np
 import xarray as xr
 
 from chain import BirthDeathChain, ChainError
-from .errors import InputError
 from .scenarios import BASELINE, Scenario
 
-#: The posterior variable of site offsets under partial pooling (see infer.model).
-SITE_OFFSET = "site_offset"
+#: Key of a draw's per-site parameters under partial pooling (a list in the order of spec.sites).
+_SITE_PARAMS = "_site_params"
 
 #: IUCN (2012) Red List Categories and Criteria v3.1, criterion E, in order of severity.
 CATEGORIES = ("below VU", "VU", "EN", "CR")
@@ -154,16 +153,15 @@ def _work(args: tuple) -> list[dict[str, Any]]:
     results = []
     sizes = np.arange(spec.cap + 1)
     for params in params_list:
-        offsets = params.get(SITE_OFFSET)
-        params = {k: v for k, v in params.items() if k != SITE_OFFSET}
+        per_site = params.get(_SITE_PARAMS)
+        params = {k: v for k, v in params.items() if k != _SITE_PARAMS}
         b, d = family.numpy_rates(params, sizes)
         b, d = scenario.apply(b[0], d[0], sizes)
-        res = _one_draw(b, d, spec, starts=() if offsets is not None else None)
-        if offsets is not None:
+        res = _one_draw(b, d, spec, starts=() if per_site is not None else None)
+        if per_site is not None:
             # partial pooling: each site's own rates for what is indexed by site
             parts = []
-            for i, start in enumerate(spec.starts):
-                own = family.site_parameters(params, offsets[:, i])
+            for own, start in zip(per_site, spec.starts):
                 bi, di = family.numpy_rates(own, sizes)
                 bi, di = scenario.apply(bi[0], di[0], sizes)
                 parts.append(_one_draw(bi, di, spec, starts=(start,)))
@@ -178,22 +176,13 @@ def _work(args: tuple) -> list[dict[str, Any]]:
     return results
 
 
-def _draw_params(posterior: xr.Dataset, names: Sequence[str],
-                 sites: Sequence[str]) -> tuple[list[dict[str, np.ndarray]], int, int]:
+def _draw_params(posterior: xr.Dataset, names: Sequence[str]) -> tuple[list[dict[str, np.ndarray]], int, int]:
     n_chain, n_draw = posterior.sizes["chain"], posterior.sizes["draw"]
     flat = {}
     for name in names:
         if name in posterior:
             v = posterior[name].transpose("chain", "draw", ...).values
             flat[name] = v.reshape((n_chain * n_draw,) + v.shape[2:])
-    if SITE_OFFSET in posterior:
-        fitted = [str(x) for x in posterior[SITE_OFFSET].coords["site"].values]
-        missing = [s for s in sites if s not in fitted]
-        if missing:
-            raise InputError(f"the posterior has no site offset for {', '.join(missing)}",
-                             source="posterior", hint=f"its sites are {', '.join(fitted)}")
-        v = posterior[SITE_OFFSET].sel(site=list(sites)).transpose("chain", "draw", "site").values
-        flat[SITE_OFFSET] = v.reshape(n_chain * n_draw, len(sites))
     params = [{k: v[i:i + 1] for k, v in flat.items()} for i in range(n_chain * n_draw)]
     return params, n_chain, n_draw
 
@@ -216,11 +205,19 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
         xarray Dataset (see the module docstring for variables and dims).
 
     Raises:
-        InputError: a pooled posterior without an offset for one of ``spec.sites``.
+        InputError: a pooled posterior without an offset for one of ``spec.sites``
+            (from :func:`infer.model.site_draws`).
     """
     names = list(getattr(family, "parameters", [])) + [s.name for s in getattr(family, "free_parameters", [])]
-    params, n_chain, n_draw = _draw_params(posterior, list(dict.fromkeys(names)) or list(posterior.data_vars),
-                                           spec.sites)
+    params, n_chain, n_draw = _draw_params(posterior, list(dict.fromkeys(names)) or list(posterior.data_vars))
+    if "site_offset" in posterior:
+        # model.site_draws is the one place that applies site offsets (imported here only:
+        # infer.model loads PyTensor, which a push-forward without pooling does not need)
+        from .model import site_draws
+
+        by_site = [site_draws(posterior, family, site, pooled=True) for site in spec.sites]
+        for i, p in enumerate(params):
+            p[_SITE_PARAMS] = [{k: v[i:i + 1] for k, v in sd.items()} for sd in by_site]
     n_total = len(params)
     if workers is None:
         workers = max(1, min(os.cpu_count() or 1, math.ceil(n_total / 500)))

@@ -108,7 +108,7 @@ def test_partial_pooling_gives_each_site_its_own_rates():
         assert ds["quasi_decay_rate"].sel(scenario="baseline", chain=0, draw=i) == pytest.approx(qs.decay_rate, rel=1e-9)
     allp = ds["extinction_probability_all_sites"].values
     np.testing.assert_allclose(allp, ds["extinction_probability"].prod("site").values, rtol=1e-14)
-    with pytest.raises(InputError, match="no site offset for east"):
+    with pytest.raises(InputError, match="no site 'east'"):
         push_forward(fam, post, PushForwardSpec(cap=cap, sites=("east",), starts=(5,), horizons=(5.0,)), workers=1)
 
 
