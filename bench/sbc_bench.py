@@ -43,7 +43,7 @@ from scipy import stats  # noqa: E402
 
 from chain import BirthDeathChain  # noqa: E402
 from infer.data import CountData  # noqa: E402
-from infer.families import Linear, Logistic, scipy_prior  # noqa: E402
+from infer.families import Linear, Logistic  # noqa: E402
 
 #: Fixed simulation design and priors per family.
 DESIGNS = {
@@ -70,7 +70,9 @@ def one_replicate(args: tuple) -> dict:
     design = DESIGNS[family_name]
     fam = design["family"]
     rng = np.random.default_rng(seed)
-    theta = {k: float(scipy_prior(v).rvs(random_state=rng)) for k, v in design["priors"].items()}
+    # θ from the family's prior (restricted to its support, e.g. logistic b > d)
+    drawn = fam.draw_prior(fam.resolve_priors(design["priors"]), 1, rng)
+    theta = {k: float(drawn[k][0]) for k in design["priors"]}
     sizes = np.arange(design["cap"] + 1)
     birth, death = fam.numpy_rates(theta, sizes)
     times = np.arange(design["years"] + 1, dtype=float)

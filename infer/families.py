@@ -55,6 +55,8 @@ from infer.errors import InputError
 __all__ = [
     "DataScale",
     "ParameterSpec",
+    "SamplingCoordinates",
+    "RegulatedCoordinates",
     "RateFamily",
     "Linear",
     "Logistic",
@@ -247,6 +249,11 @@ class _Numpy:
     maximum = staticmethod(np.maximum)
     exp = staticmethod(np.exp)
     log = staticmethod(np.log)
+    log1p = staticmethod(np.log1p)
+
+    @staticmethod
+    def sigmoid(x):
+        return 0.5 * (1.0 + np.tanh(0.5 * np.asarray(x, dtype=float)))
 
     @staticmethod
     def dot(x, w):
@@ -272,6 +279,8 @@ class _Tensor:
         self.maximum = pt.maximum
         self.exp = pt.exp
         self.log = pt.log
+        self.log1p = pt.log1p
+        self.sigmoid = pt.sigmoid
 
     def dot(self, x, w):
         return self.pt.dot(x, w)
@@ -281,6 +290,143 @@ class _Tensor:
 
     def cumsum(self, x):
         return self.pt.cumsum(x)
+
+
+# --------------------------------------------------------------------------- coordinates
+class SamplingCoordinates:
+    """Unconstrained coordinates the sampler moves in instead of some named parameters.
+
+    NUTS sees each named parameter on its own log (or logit) scale by default. Where
+    the data pin down combinations of parameters along a curved ridge, a family can
+    declare coordinates that straighten it (a bijection y ↦ θ of the unconstrained
+    space onto the parameters' support). The model builder then creates the
+    coordinates as flat variables, records the named parameters as deterministic
+    functions of them, and adds the parameters' own prior density with the Jacobian:
+
+        log p(y) = Σ_k log p_k(θ_k(y)) + log |det ∂θ/∂y|,
+
+    so the posterior of the named parameters, and their priors, are those of the
+    family; only the sampler's geometry changes.
+
+    Subclasses set ``names`` (the coordinates, in order), ``replaces`` (the named
+    parameters they determine) and ``description``, and implement
+    :meth:`to_parameters` and :meth:`from_parameters`.
+    """
+
+    names: tuple[str, ...] = ()
+    replaces: tuple[str, ...] = ()
+    description: str = ""
+
+    def to_parameters(self, xp: Any, y: Mapping[str, Any]) -> tuple[dict[str, Any], Any]:
+        """The named parameters at coordinates ``y`` and log |det ∂θ/∂y|.
+
+        Args:
+            xp: the backend (numpy or PyTensor helpers of this module).
+            y: {coordinate name: value}.
+
+        Returns:
+            ({parameter name: value} for every name in ``replaces``, log-Jacobian).
+        """
+        raise NotImplementedError
+
+    def from_parameters(self, p: Mapping[str, float]) -> dict[str, float]:
+        """Coordinates of a parameter point (the inverse map; used for the initial point).
+
+        Args:
+            p: {parameter name: value} inside the family's support.
+
+        Returns:
+            {coordinate name: float}.
+        """
+        raise NotImplementedError
+
+    def initial_point(self, p: Mapping[str, float]) -> dict[str, float]:
+        """Coordinates of a starting point for the sampler at (or, if ``p`` is outside
+        the support, near) the parameter point ``p`` (normally the prior medians).
+
+        Args:
+            p: {parameter name: value} for every name in ``replaces``.
+
+        Returns:
+            {coordinate name: float}.
+        """
+        return self.from_parameters(p)
+
+
+class RegulatedCoordinates(SamplingCoordinates):
+    """Coordinates for λ_n = b·n + ι and μ_n = n·(d + s·n), s = (b − d)/K > 0 (logistic).
+
+    With c the median count (DataScale.count_scale), the data determine well the
+    births at the typical size, B = b·c + ι (which, near equilibrium, also equal the
+    deaths there), and the slope of per-capita death, s = (b − d)/K; they say little
+    about how B splits into local births and immigrants, or how per-capita death
+    splits into a baseline d and crowding. In b, d, K, ι those weak directions are
+    curved (K ∝ b − d at fixed s; b falls as ι rises at fixed B). The coordinates
+
+        y_B = log B,  y_φ = logit(ι/B)  (with immigration),
+        y_r = logit(d/b),  y_s = log s,
+
+    make them straight: b = B·(1 − φ)/c, ι = B·φ, d = b·r, K = b·(1 − r)/s. The map is
+    triangular, so
+
+        log |det ∂(b, ι, d, K)/∂y| = log b + log ι + log d + log(1 − r) + log K
+
+    (without immigration drop log ι; then B = b·c). The coordinates cover exactly
+    b > d (a regulated population).
+
+    Args:
+        count_scale: c, the median count.
+        immigration: whether ι is a parameter.
+    """
+
+    description = ("sampled as log B, logit φ, logit(d/b), log s with B = b·c + ι the births "
+                   "at the median count c, φ = ι/B the immigrants' share and s = (b − d)/K")
+
+    def __init__(self, count_scale: float, immigration: bool) -> None:
+        self.count_scale = float(count_scale)
+        self.immigration = bool(immigration)
+        self.names = (("log_births_at_median", "logit_immigrant_share") if immigration
+                      else ("log_births_at_median",)) + ("logit_death_share", "log_death_slope")
+        self.replaces = ("birth_rate", "death_rate", "carrying_capacity") + (
+            ("immigration",) if immigration else ())
+
+    def to_parameters(self, xp: Any, y: Mapping[str, Any]) -> tuple[dict[str, Any], Any]:
+        births = xp.exp(y["log_births_at_median"])
+        out: dict[str, Any] = {}
+        if self.immigration:
+            out["birth_rate"] = births * xp.sigmoid(-y["logit_immigrant_share"]) / self.count_scale
+            out["immigration"] = births * xp.sigmoid(y["logit_immigrant_share"])
+        else:
+            out["birth_rate"] = births / self.count_scale
+        r = xp.sigmoid(y["logit_death_share"])
+        out["death_rate"] = out["birth_rate"] * r
+        out["carrying_capacity"] = out["birth_rate"] * (1.0 - r) / xp.exp(y["log_death_slope"])
+        log_jac = (xp.log(out["birth_rate"]) + xp.log(out["death_rate"]) + xp.log1p(-r)
+                   + xp.log(out["carrying_capacity"]))
+        if self.immigration:
+            log_jac = log_jac + xp.log(out["immigration"])
+        return out, log_jac
+
+    def from_parameters(self, p: Mapping[str, float]) -> dict[str, float]:
+        b, d, k = float(p["birth_rate"]), float(p["death_rate"]), float(p["carrying_capacity"])
+        iota = float(p["immigration"]) if self.immigration else 0.0
+        if not (0.0 < d < b and k > 0.0 and (iota > 0.0 or not self.immigration)):
+            raise InputError(f"b = {b:g}, d = {d:g}, K = {k:g} is outside b > d > 0, K > 0",
+                             source="coordinates")
+        births = b * self.count_scale + iota
+        out = {"log_births_at_median": math.log(births)}
+        if self.immigration:
+            out["logit_immigrant_share"] = math.log(iota / (b * self.count_scale))
+        out["logit_death_share"] = math.log(d / (b - d))
+        out["log_death_slope"] = math.log((b - d) / k)
+        return out
+
+    def initial_point(self, p: Mapping[str, float]) -> dict[str, float]:
+        """As :meth:`from_parameters`, with d lowered to b/2 when it is not below b."""
+        q = dict(p)
+        if not float(q["death_rate"]) < float(q["birth_rate"]):
+            q["death_rate"] = 0.5 * float(q["birth_rate"])
+        return self.from_parameters(q)
 
 
 # --------------------------------------------------------------------------- base
@@ -462,6 +608,74 @@ class RateFamily:
             priors[name] = spec
         return {n: check_prior(n, s, specs[n].support) for n, s in priors.items()}
 
+    def admissible(self, p: Mapping[str, Any]) -> np.ndarray:
+        """Which parameter points lie in the family's support beyond each parameter's own.
+
+        Args:
+            p: {name: array of draws} of the free parameters.
+
+        Returns:
+            bool array over the draws (all true unless the family restricts a
+            combination, e.g. logistic b > d).
+        """
+        n = max((np.asarray(v).shape[0] for v in p.values() if np.ndim(v)), default=1)
+        return np.ones(n, dtype=bool)
+
+    def sampling_coordinates(self, scale: DataScale) -> SamplingCoordinates | None:
+        """Coordinates the sampler should use instead of the named parameters, if any.
+
+        Args:
+            scale: the data's scales.
+
+        Returns:
+            a SamplingCoordinates, or None to sample each parameter on its own scale.
+        """
+        return None
+
+    def draw_prior(self, priors: Mapping[str, Mapping[str, Any]], n: int,
+                   rng: np.random.Generator) -> dict[str, np.ndarray]:
+        """Independent draws from the family's prior (with derived quantities).
+
+        Each free parameter is drawn from its prior (:func:`scipy_prior`); points
+        outside the family's support (:meth:`admissible`) are drawn again, so the
+        draws follow the prior restricted to the support.
+
+        Args:
+            priors: resolved priors of every free parameter.
+            n: number of draws (≥ 1).
+            rng: random generator.
+
+        Returns:
+            {name: array (n,) or (n, length)} for the free and derived parameters.
+
+        Raises:
+            InputError: fewer than one draw in a thousand is admissible (priors that
+                barely meet the support).
+        """
+        specs = self.free_parameters
+        kept: dict[str, list[np.ndarray]] = {s.name: [] for s in specs}
+        have, tried = 0, 0
+        while have < n:
+            m = max(n - have, 16)
+            batch = {s.name: np.asarray(scipy_prior(priors[s.name]).rvs(
+                size=(m, s.length) if s.length else m, random_state=rng), dtype=float)
+                for s in specs}
+            ok = self.admissible(batch)
+            for k, v in batch.items():
+                kept[k].append(v[ok])
+            have += int(ok.sum())
+            tried += m
+            if tried >= 1000 and have < tried / 1000:
+                raise InputError(f"fewer than one prior draw in a thousand meets the {self.name} "
+                                 "family's support", source="priors",
+                                 hint="centre the priors where the family applies")
+        out = {k: np.concatenate(v)[:n] for k, v in kept.items()}
+        # the formulas broadcast scalars as (n, 1) against vectors (n, length)
+        derived = self._derived(_Numpy(), {k: v if v.ndim == 2 else v[:, None]
+                                           for k, v in out.items()})
+        out.update({k: np.asarray(v) for k, v in derived.items()})
+        return out
+
     # ---- rates ---------------------------------------------------------------------
     def _compose(self, xp: Any, p: Mapping[str, Any], n: Any,
                  sizes: np.ndarray) -> tuple[Any, Any]:
@@ -579,6 +793,9 @@ class RateFamily:
             shape = f" (vector of {s.length})" if s.length else ""
             prior = _describe_prior(priors[s.name]) if s.name in priors else "—"
             lines.append(f"  {s.name}{shape}: {s.description}; prior {prior}")
+        coords = self.sampling_coordinates(DataScale())
+        if coords is not None:
+            lines += ["", f"Sampler coordinates: {coords.description}."]
         return "\n".join(lines)
 
     def __repr__(self) -> str:
@@ -645,11 +862,16 @@ class Logistic(RateFamily):
     K ~ lognormal(log c, 1), ι ~ lognormal(log(1/τ), 1.5) (τ median census interval,
     c median count).
 
-    The priors do not force b > d. When b < d the formula describes an unregulated
-    population whose per-capita death falls with size; it is clipped at zero (from
-    n = K·d/(d − b) on), and then no stationary law exists. Beyond any cap the
-    quadratic deaths continue, so with b > d and immigration a stationary law always
-    exists.
+    The family describes a regulated population: its support is b > d (the intrinsic
+    growth rate b − d is positive, so per-capita death rises with size and K is a
+    stable equilibrium); the priors are those above restricted to b > d. Beyond any
+    cap the quadratic deaths continue, so with immigration a stationary law always
+    exists. (Evaluated at b < d the formula would describe per-capita death falling
+    with size, clipped at zero; the rates functions still accept such values.)
+
+    The sampler works in :class:`RegulatedCoordinates` (births at the median count,
+    the immigrants' share, d/b and the death slope (b − d)/K), which straighten the
+    weakly identified directions; the posterior and priors stay on b, d, K, ι.
 
     Args:
         immigration: include ι.
@@ -675,6 +897,14 @@ class Logistic(RateFamily):
                     sizes: np.ndarray) -> tuple[Any, Any]:
         b, d, k = p["birth_rate"], p["death_rate"], p["carrying_capacity"]
         return b + 0.0 * n, xp.maximum(d + (b - d) * n / k, 0.0)
+
+    def admissible(self, p: Mapping[str, Any]) -> np.ndarray:
+        """b > d: a regulated population (see the class docstring)."""
+        return np.asarray(p["birth_rate"] > p["death_rate"], dtype=bool).reshape(-1)
+
+    def sampling_coordinates(self, scale: DataScale) -> SamplingCoordinates:
+        """:class:`RegulatedCoordinates` at the data's median count."""
+        return RegulatedCoordinates(scale.count_scale, self.immigration)
 
 
 class Allee(RateFamily):

@@ -247,20 +247,39 @@ def sample_model(cm: CountModel, *, chains: int = 4, draws: int = 1000, tune: in
     return idata
 
 
-def _sample_prior(cm: CountModel, n: int, seed: int):
-    import pymc as pm
+def _sample_prior(cm: CountModel, n: int, seed: int) -> xr.Dataset:
+    """The ``prior`` group: independent draws of every summarised parameter from its prior.
 
-    names = [s.name for s in cm.family.free_parameters] + list(cm.family.derived_parameters)
-    names += [v for v in cm.var_names if v not in names]
-    with cm.model, warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=".*Potential.*")
-        warnings.filterwarnings("ignore", category=UserWarning, module="pymc")
-        prior = pm.sample_prior_predictive(draws=n, var_names=names, random_seed=seed,
-                                           return_inferencedata=True)
-    return prior.prior
+    Drawn directly (the family's :meth:`~infer.families.RateFamily.draw_prior`, which
+    respects the family's support, plus detection and the site offsets), not by
+    forward-sampling the PyMC model: a model sampled in other coordinates holds the
+    prior as a density, which cannot be forward-sampled.
+    """
+    from infer.families import scipy_prior
+
+    rng = np.random.default_rng(seed)
+    draws = cm.family.draw_prior(cm.priors, n, rng)
+    if "detection" in cm.priors:
+        draws["detection"] = scipy_prior(cm.priors["detection"]).rvs(size=n, random_state=rng)
+    if cm.pooling:
+        scale = scipy_prior(cm.priors["site_scale"]).rvs(size=n, random_state=rng)
+        draws["site_scale"] = scale
+        draws["site_offset"] = scale[:, None] * rng.standard_normal((n, cm.data.n_sites))
+        name = cm.family.pooled_parameter
+        if name in draws and np.ndim(draws[name]) == 1:
+            draws[f"site_{name}"] = draws[name][:, None] * np.exp(draws["site_offset"])
+    dims = cm.model.named_vars_to_dims
+    out = {}
+    for name, v in draws.items():
+        extra = tuple(dims.get(name, ()))
+        if np.ndim(v) - 1 != len(extra):
+            extra = tuple(f"{name}_dim_{i}" for i in range(np.ndim(v) - 1))
+        out[name] = (("chain", "draw") + extra, np.asarray(v, dtype=float)[None])
+    coords = {k: list(v) for k, v in cm.model.coords.items()
+              if any(k in spec[0] for spec in out.values())}
+    return xr.Dataset(out, coords={"chain": [0], "draw": np.arange(n), **coords})
 
 
-# --------------------------------------------------------------------------- predictive
 def _count_cells(data: CountData) -> pd.DataFrame:
     rows = []
     for si, s in enumerate(data.series):

@@ -10,6 +10,12 @@ a gradient, added as a ``pm.Potential`` named ``count_loglik``), each site condi
 on its first count (DESIGN §1 "Likelihood"). Rates are evaluated over the sizes
 0..N of the cap N.
 
+* Parameters are sampled each on its own unconstrained scale, unless the family
+  declares sampling coordinates (:class:`infer.families.SamplingCoordinates`, e.g. the
+  logistic family's): then the coordinates are flat variables, the named parameters
+  Deterministics of them, and the named parameters' prior density plus the log-Jacobian
+  is the Potential ``coordinate_prior``. Either way the posterior holds the named
+  parameters, under the same priors.
 * Sites share one set of rates by default (one Op over all sites). With
   ``pooling=True`` each site s has its own growth: the family's pooled parameter
   (``birth_rate``; for per-size the log birth knots) is shifted on the log scale by a
@@ -38,7 +44,8 @@ import xarray as xr
 from infer.data import CountData
 from infer.errors import InputError, InvalidRatesError, LikelihoodUnderflowError
 from infer.likelihood import CountLikelihoodGradOp, CountLikelihoodOp
-from infer.families import (MODEL_PARAMETERS, DataScale, RateFamily, check_prior, get_family)
+from infer.families import (MODEL_PARAMETERS, PRIOR_DISTRIBUTIONS, DataScale, RateFamily,
+                             check_prior, get_family)
 
 __all__ = [
     "MODEL_PRIORS",
@@ -320,26 +327,53 @@ class CountModel:
         return np.arange(self.cap + 1)
 
 
-def _make_rv(name: str, spec: Mapping[str, Any], *, dims: str | None = None):
+def _prior_distribution(spec: Mapping[str, Any]) -> tuple[Any, dict[str, float]]:
+    """The PyMC distribution class of a prior specification and its arguments.
+
+    The specification's keys (PRIOR_DISTRIBUTIONS) are PyMC's own argument names.
+    """
     import pymc as pm
 
-    kw: dict[str, Any] = {"dims": dims} if dims else {}
+    classes = {"lognormal": pm.LogNormal, "halfnormal": pm.HalfNormal, "gamma": pm.Gamma,
+               "exponential": pm.Exponential, "uniform": pm.Uniform, "normal": pm.Normal,
+               "beta": pm.Beta}
     d = spec["dist"]
-    if d == "lognormal":
-        return pm.LogNormal(name, mu=spec["mu"], sigma=spec["sigma"], **kw)
-    if d == "halfnormal":
-        return pm.HalfNormal(name, sigma=spec["sigma"], **kw)
-    if d == "gamma":
-        return pm.Gamma(name, alpha=spec["alpha"], beta=spec["beta"], **kw)
-    if d == "exponential":
-        return pm.Exponential(name, lam=spec["lam"], **kw)
-    if d == "uniform":
-        return pm.Uniform(name, lower=spec["lower"], upper=spec["upper"], **kw)
-    if d == "normal":
-        return pm.Normal(name, mu=spec["mu"], sigma=spec["sigma"], **kw)
-    if d == "beta":
-        return pm.Beta(name, alpha=spec["alpha"], beta=spec["beta"], **kw)
-    raise InputError(f"unknown prior distribution {d!r} for {name}", source=f"priors.{name}")
+    if d not in classes:
+        raise InputError(f"unknown prior distribution {d!r}", source="priors")
+    # numpy float64, not Python floats: PyTensor's autocasting may store a Python float
+    # constant as float32, rounding e.g. a prior's mu (an error of ~1e-8 in the density)
+    return classes[d], {k: np.float64(spec[k]) for k in PRIOR_DISTRIBUTIONS[d]}
+
+
+def _make_rv(name: str, spec: Mapping[str, Any], *, dims: str | None = None):
+    cls, kw = _prior_distribution(spec)
+    return cls(name, **kw, **({"dims": dims} if dims else {}))
+
+
+def _prior_logp(spec: Mapping[str, Any], value: Any):
+    """Log prior density of ``value`` (a tensor) under a prior specification."""
+    import pymc as pm
+
+    cls, kw = _prior_distribution(spec)
+    return pm.logp(cls.dist(**kw), value)
+
+
+def _coordinate_parameters(coords: Any, priors: Mapping[str, Mapping[str, Any]]) -> dict[str, Any]:
+    """Flat coordinates, the named parameters they determine (Deterministics) and their
+    prior density with the Jacobian (the Potential ``coordinate_prior``); see
+    :class:`infer.families.SamplingCoordinates`. Must be called inside a model context."""
+    import pymc as pm
+
+    from infer.families import _Tensor, scipy_prior
+
+    start = coords.initial_point({k: float(scipy_prior(priors[k]).median())
+                                  for k in coords.replaces})
+    y = {k: pm.Flat(k, initval=start[k]) for k in coords.names}
+    values, log_jac = coords.to_parameters(_Tensor(), y)
+    params = {k: pm.Deterministic(k, v) for k, v in values.items()}
+    pm.Potential("coordinate_prior",
+                 sum(_prior_logp(priors[k], v) for k, v in params.items()) + log_jac)
+    return params
 
 
 #: Largest number of uniformization steps (max total rate × longest census interval)
@@ -538,10 +572,13 @@ def build_count_model(data: CountData, family: str | RateFamily, *, cap: int | N
     sizes = np.arange(cap + 1)
     ops = []
     with pm.Model(coords=coords) as model:
-        params: dict[str, Any] = {}
+        coords_ = fam.sampling_coordinates(scale)
+        params: dict[str, Any] = (_coordinate_parameters(coords_, resolved)
+                                  if coords_ is not None else {})
         for spec in fam.free_parameters:
-            params[spec.name] = _make_rv(spec.name, resolved[spec.name],
-                                         dims=vec_dims.get(spec.name))
+            if spec.name not in params:
+                params[spec.name] = _make_rv(spec.name, resolved[spec.name],
+                                             dims=vec_dims.get(spec.name))
         for name, value in fam.pytensor_derived(params).items():
             params[name] = pm.Deterministic(name, value, dims=vec_dims.get(name))
         extra = []

@@ -230,3 +230,103 @@ def test_describe_states_formula_and_priors():
     text = fam.describe(fam.default_priors(SCALE))
     assert "b·n/(A + n)" in text and "allee_threshold" in text and "lognormal" in text
     assert "+ ι" in text
+
+
+# --------------------------------------------------------------------------- sampler coordinates
+@pytest.mark.parametrize("immigration", [False, True])
+def test_regulated_coordinates_invert_and_jacobian_matches_finite_differences(immigration):
+    # change of variables (common practice): the stated log|det ∂θ/∂y| against the
+    # log-determinant (numpy.linalg.slogdet) of a central-difference Jacobian
+    from infer.families import RegulatedCoordinates, _Numpy
+
+    coords = RegulatedCoordinates(count_scale=SCALE.count_scale, immigration=immigration)
+    theta = {"birth_rate": 0.9, "death_rate": 0.2, "carrying_capacity": 45.0}
+    if immigration:
+        theta["immigration"] = 2.5
+    y = coords.from_parameters(theta)
+    back, log_jac = coords.to_parameters(_Numpy(), y)
+    for k, v in theta.items():
+        assert float(back[k]) == pytest.approx(v, rel=1e-12)
+    names = list(coords.names)
+    h = 1e-6
+    jac = np.empty((len(coords.replaces), len(names)))
+    for j, name in enumerate(names):
+        up, down = dict(y), dict(y)
+        up[name] += h
+        down[name] -= h
+        pu, _ = coords.to_parameters(_Numpy(), up)
+        pd_, _ = coords.to_parameters(_Numpy(), down)
+        jac[:, j] = [(float(pu[k]) - float(pd_[k])) / (2 * h) for k in coords.replaces]
+    sign, logdet = np.linalg.slogdet(jac)
+    assert sign != 0
+    assert float(log_jac) == pytest.approx(logdet, abs=1e-6)
+
+
+def test_regulated_coordinates_refuse_points_outside_b_above_d():
+    from infer.families import RegulatedCoordinates
+
+    coords = RegulatedCoordinates(count_scale=30.0, immigration=False)
+    with pytest.raises(InputError, match="b > d"):
+        coords.from_parameters({"birth_rate": 0.2, "death_rate": 0.3, "carrying_capacity": 40.0})
+    start = coords.initial_point({"birth_rate": 0.2, "death_rate": 0.3, "carrying_capacity": 40.0})
+    assert start["logit_death_share"] == pytest.approx(0.0)  # d moved to b/2
+
+
+def test_logistic_prior_draws_are_the_prior_restricted_to_b_above_d():
+    # the restricted prior: b > d always; K is independent of (b, d), so its draws keep
+    # the unrestricted lognormal law (Kolmogorov–Smirnov against scipy.stats.lognorm);
+    # P(b > d) for two lognormals = Φ((μ_b − μ_d)/sqrt(σ_b² + σ_d²)) (scipy.stats.norm)
+    fam = Logistic()
+    priors = fam.resolve_priors(scale=SCALE)
+    draws = fam.draw_prior(priors, 4000, np.random.default_rng(5))
+    assert np.all(draws["birth_rate"] > draws["death_rate"])
+    k = priors["carrying_capacity"]
+    assert stats.kstest(draws["carrying_capacity"],
+                        stats.lognorm(s=k["sigma"], scale=math.exp(k["mu"])).cdf).pvalue > 0.01
+    # the restriction keeps b's prior where b > d: P(b > x | b > d) from a large
+    # unrestricted reference sample
+    b, d = priors["birth_rate"], priors["death_rate"]
+    p_keep = stats.norm.cdf((b["mu"] - d["mu"]) / math.hypot(b["sigma"], d["sigma"]))
+    rng = np.random.default_rng(6)
+    bb = scipy_prior(b).rvs(size=200_000, random_state=rng)
+    dd = scipy_prior(d).rvs(size=200_000, random_state=rng)
+    assert np.mean(bb > dd) == pytest.approx(p_keep, abs=0.005)
+    ref = bb[bb > dd]
+    assert stats.ks_2samp(draws["birth_rate"], ref).pvalue > 0.01
+
+
+def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian():
+    # the model's log density without the likelihood, at a point given in sampler
+    # coordinates, equals Σ log p_k(θ_k) (scipy.stats densities) + log|det ∂θ/∂y|
+    import pytensor as _pt
+
+    from infer.data import CountData
+    from infer.families import _Numpy
+    from infer.model import build_count_model
+
+    data = CountData.single(np.arange(8.0), np.array([20, 24, 27, 31, 30, 33, 29, 32.0]))
+    cm = build_count_model(data, Logistic(immigration=True))
+    coords = cm.family.sampling_coordinates(cm.scale)
+    theta = {"birth_rate": 0.7, "death_rate": 0.25, "carrying_capacity": 35.0, "immigration": 0.8}
+    y = coords.from_parameters(theta)
+    model = cm.model
+    graph = model.replace_rvs_by_values([model["coordinate_prior"]])[0]
+    fn = _pt.function(model.value_vars, graph, on_unused_input="ignore")
+    value = float(fn(*[y[v.name] for v in model.value_vars]))
+    _, log_jac = coords.to_parameters(_Numpy(), y)
+    expected = sum(scipy_prior(cm.priors[k]).logpdf(v) for k, v in theta.items()) + float(log_jac)
+    assert value == pytest.approx(expected, rel=1e-10)
+
+
+def test_per_size_prior_draws_carry_the_knot_values():
+    # the knot values follow the random-walk formula of the PerSize docstring
+    fam = PerSize(knots=5).adapt(SCALE)
+    draws = fam.draw_prior(fam.resolve_priors(scale=SCALE), 50, np.random.default_rng(2))
+    assert draws["birth_innovations"].shape == (50, 3)
+    x = draws["log_birth_knots"]
+    assert x.shape == (50, 5)
+    np.testing.assert_allclose(x[:, 0], draws["log_birth_level"])
+    np.testing.assert_allclose(x[:, 1] - x[:, 0], draws["log_birth_slope"])
+    second = x[:, 2:] - 2 * x[:, 1:-1] + x[:, :-2]
+    np.testing.assert_allclose(second, draws["birth_smoothness"][:, None]
+                               * draws["birth_innovations"], atol=1e-12)

@@ -311,13 +311,10 @@ def test_pooled_model_log_likelihood_is_sum_over_sites():
     point["site_offset_z"] = z
     import pytensor
 
-    graph = model.replace_rvs_by_values([model.potentials[0]])[0]
-    pot = pytensor.function(model.value_vars, graph, on_unused_input="ignore")
-    value = float(pot(*[point[v.name] for v in model.value_vars]))
-    b0 = float(np.exp(point["birth_rate_log__"]))
-    d0 = float(np.exp(point["death_rate_log__"]))
-    k0 = float(np.exp(point["carrying_capacity_log__"]))
-    scale = float(np.exp(point["site_scale_log__"]))
+    names = ["count_loglik", "birth_rate", "death_rate", "carrying_capacity", "site_scale"]
+    graphs = model.replace_rvs_by_values([model[k] for k in names])
+    fn = pytensor.function(model.value_vars, graphs, on_unused_input="ignore")
+    value, b0, d0, k0, scale = (float(v) for v in fn(*[point[v.name] for v in model.value_vars]))
     total = 0.0
     for s, zs in zip(data.series, z):
         b, d = cm.family.numpy_rates({"birth_rate": b0 * math.exp(scale * zs),
