@@ -357,50 +357,58 @@ class RegulatedCoordinates(SamplingCoordinates):
     """Coordinates for λ_n = b·n + ι and μ_n = n·(d + s·n), s = (b − d)/K > 0 (logistic).
 
     With c the median count (DataScale.count_scale), the data determine well the
-    births at the typical size, B = b·c + ι (which, near equilibrium, also equal the
-    deaths there), and the slope of per-capita death, s = (b − d)/K; they say little
-    about how B splits into local births and immigrants, or how per-capita death
-    splits into a baseline d and crowding. In b, d, K, ι those weak directions are
-    curved (K ∝ b − d at fixed s; b falls as ι rises at fixed B). The coordinates
+    births at the typical size, B = b·c + ι, and whether the typical size is near the
+    equilibrium — the balance β = s·c / (B/c − d) of crowding deaths per head at c
+    against births per head there net of the baseline death (β = 1 exactly when births
+    equal deaths at c: B = c·(d + s·c)). They say little about how B splits into local
+    births and immigrants, or how per-capita death splits into the baseline d and
+    crowding. In b, d, K, ι those weak directions are curved (b falls as ι rises at
+    fixed B; at a fixed balance K shrinks with b − d, and log s bends down as d grows).
+    The coordinates
 
         y_B = log B,  y_φ = logit(ι/B)  (with immigration),
-        y_r = logit(d/b),  y_s = log s,
+        y_r = logit(d/b),  y_β = log β,
 
-    make them straight: b = B·(1 − φ)/c, ι = B·φ, d = b·r, K = b·(1 − r)/s. The map is
-    triangular, so
+    make them nearly straight: b = B·(1 − φ)/c, ι = B·φ, d = b·r,
+    s = β·(B/c − d)/c, K = (b − d)/s. Every point of y is valid (B/c − d ≥ b − d > 0)
+    and the map is triangular with ∂ log K/∂y_β = −1, so
 
         log |det ∂(b, ι, d, K)/∂y| = log b + log ι + log d + log(1 − r) + log K
 
-    (without immigration drop log ι; then B = b·c). The coordinates cover exactly
-    b > d (a regulated population).
+    (without immigration drop log ι; then B = b·c and β = c/K). The coordinates
+    cover exactly b > d (a regulated population).
 
     Args:
         count_scale: c, the median count.
         immigration: whether ι is a parameter.
     """
 
-    description = ("sampled as log B, logit φ, logit(d/b), log s with B = b·c + ι the births "
-                   "at the median count c, φ = ι/B the immigrants' share and s = (b − d)/K")
+    description = ("sampled as log B, logit φ, logit(d/b), log β with B = b·c + ι the births "
+                   "at the median count c, φ = ι/B the immigrants' share and "
+                   "β = c·(b − d)/K ÷ (B/c − d) the balance of births and deaths at c")
 
     def __init__(self, count_scale: float, immigration: bool) -> None:
         self.count_scale = float(count_scale)
         self.immigration = bool(immigration)
         self.names = (("log_births_at_median", "logit_immigrant_share") if immigration
-                      else ("log_births_at_median",)) + ("logit_death_share", "log_death_slope")
+                      else ("log_births_at_median",)) + ("logit_death_share",
+                                                         "log_balance_at_median")
         self.replaces = ("birth_rate", "death_rate", "carrying_capacity") + (
             ("immigration",) if immigration else ())
 
     def to_parameters(self, xp: Any, y: Mapping[str, Any]) -> tuple[dict[str, Any], Any]:
+        c = self.count_scale
         births = xp.exp(y["log_births_at_median"])
         out: dict[str, Any] = {}
         if self.immigration:
-            out["birth_rate"] = births * xp.sigmoid(-y["logit_immigrant_share"]) / self.count_scale
+            out["birth_rate"] = births * xp.sigmoid(-y["logit_immigrant_share"]) / c
             out["immigration"] = births * xp.sigmoid(y["logit_immigrant_share"])
         else:
-            out["birth_rate"] = births / self.count_scale
+            out["birth_rate"] = births / c
         r = xp.sigmoid(y["logit_death_share"])
         out["death_rate"] = out["birth_rate"] * r
-        out["carrying_capacity"] = out["birth_rate"] * (1.0 - r) / xp.exp(y["log_death_slope"])
+        slope = xp.exp(y["log_balance_at_median"]) * (births / c - out["death_rate"]) / c
+        out["carrying_capacity"] = out["birth_rate"] * (1.0 - r) / slope
         log_jac = (xp.log(out["birth_rate"]) + xp.log(out["death_rate"]) + xp.log1p(-r)
                    + xp.log(out["carrying_capacity"]))
         if self.immigration:
@@ -413,12 +421,13 @@ class RegulatedCoordinates(SamplingCoordinates):
         if not (0.0 < d < b and k > 0.0 and (iota > 0.0 or not self.immigration)):
             raise InputError(f"b = {b:g}, d = {d:g}, K = {k:g} is outside b > d > 0, K > 0",
                              source="coordinates")
-        births = b * self.count_scale + iota
+        c = self.count_scale
+        births = b * c + iota
         out = {"log_births_at_median": math.log(births)}
         if self.immigration:
-            out["logit_immigrant_share"] = math.log(iota / (b * self.count_scale))
+            out["logit_immigrant_share"] = math.log(iota / (b * c))
         out["logit_death_share"] = math.log(d / (b - d))
-        out["log_death_slope"] = math.log((b - d) / k)
+        out["log_balance_at_median"] = math.log((b - d) / k * c / (births / c - d))
         return out
 
     def initial_point(self, p: Mapping[str, float]) -> dict[str, float]:
@@ -870,8 +879,9 @@ class Logistic(RateFamily):
     with size, clipped at zero; the rates functions still accept such values.)
 
     The sampler works in :class:`RegulatedCoordinates` (births at the median count,
-    the immigrants' share, d/b and the death slope (b − d)/K), which straighten the
-    weakly identified directions; the posterior and priors stay on b, d, K, ι.
+    the immigrants' share, d/b and the balance of births and deaths at the median
+    count), which straighten the weakly identified directions; the posterior and
+    priors stay on b, d, K, ι.
 
     Args:
         immigration: include ι.
@@ -879,7 +889,8 @@ class Logistic(RateFamily):
 
     name = "logistic"
     formula = ("b(n) = b,  d(n) = max(0, d + (b - d)·n/K)\n"
-               "at the carrying capacity n = K births equal deaths: b·K = μ_K")
+               "at the carrying capacity n = K births equal deaths: b·K = μ_K\n"
+               "support b > d (a regulated population); the priors are restricted to it")
 
     def _own_parameters(self) -> list[ParameterSpec]:
         return [ParameterSpec("birth_rate", "positive", "b, per-capita birth rate"),

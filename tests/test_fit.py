@@ -376,3 +376,13 @@ def test_demo_recovery(name, family, options):
     for k, (x, true) in checks.items():
         lo, hi = np.quantile(x.reshape(-1), [0.05, 0.95])
         assert lo < true < hi, (k, lo, true, hi)
+
+
+def test_priors_that_barely_meet_the_logistic_support_stop_before_sampling():
+    # b far below d under the priors: almost no prior draw is a regulated population
+    data = load_counts(EXAMPLES / "copper_tarn.csv")
+    priors = {"birth_rate": {"dist": "lognormal", "mu": math.log(0.05), "sigma": 0.1},
+              "death_rate": {"dist": "lognormal", "mu": math.log(2.0), "sigma": 0.1}}
+    with pytest.raises(InputError, match="support"):
+        fit_counts(data, "logistic", priors=priors, chains=1, draws=5, tune=5,
+                   progressbar=False)
