@@ -210,7 +210,9 @@ def sample_model(cm: CountModel, *, chains: int = 4, draws: int = 1000, tune: in
     evaluations — each one a full likelihood-and-gradient sweep — per draw. The target
     acceptance rate is 0.95 rather than PyMC's 0.8: the posteriors have curved ridges
     (immigration traded against carrying capacity, a weakly identified death rate near
-    zero), and at 0.8–0.9 the demo fits still showed a few divergent transitions.
+    zero), and at 0.8–0.9 the demo fits still showed a few divergent transitions. A
+    dense metric cannot straighten a curved ridge; a family's sampling coordinates
+    (:class:`infer.families.SamplingCoordinates`) can, and the logistic family has them.
 
     Args:
         cm: the built model.
