@@ -12,7 +12,9 @@ the prior specifications, calls :meth:`RateFamily.pytensor_rates`, and fits.
 :meth:`RateFamily.numpy_rates` evaluates the same formula for arrays of posterior
 draws at any sizes — including sizes beyond the model's cap, where the formula simply
 continues, so the push-forward can decide from the tail whether a stationary law
-exists.
+exists. A family may also declare the coordinates the sampler should move in
+(:class:`SamplingCoordinates`; the logistic family does) and a support narrower than
+its parameters' own (:meth:`RateFamily.admissible`; logistic: b > d).
 
 Priors
 ------

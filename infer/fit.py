@@ -282,6 +282,7 @@ def _sample_prior(cm: CountModel, n: int, seed: int) -> xr.Dataset:
     return xr.Dataset(out, coords={"chain": [0], "draw": np.arange(n), **coords})
 
 
+# --------------------------------------------------------------------------- predictive
 def _count_cells(data: CountData) -> pd.DataFrame:
     rows = []
     for si, s in enumerate(data.series):
@@ -677,9 +678,10 @@ def fit_counts(data: CountData | str | os.PathLike[str] | pd.DataFrame,
     messages = list(cm.messages)
     timing["build"] = time.perf_counter() - t0
     sample_seed, prior_seed, rng = _seed_streams(seed)
+    # prior draws before sampling: priors that barely meet the family's support stop here
     t0 = time.perf_counter()
-    prior = _sample_prior(cm, n_prior, prior_seed)  # before sampling: priors that barely
-    timing["prior"] = time.perf_counter() - t0      # meet the support stop here, not after
+    prior = _sample_prior(cm, n_prior, prior_seed)
+    timing["prior"] = time.perf_counter() - t0
 
     import arviz as az
 

@@ -45,7 +45,7 @@ from infer.data import CountData
 from infer.errors import InputError, InvalidRatesError, LikelihoodUnderflowError
 from infer.likelihood import CountLikelihoodGradOp, CountLikelihoodOp
 from infer.families import (MODEL_PARAMETERS, PRIOR_DISTRIBUTIONS, DataScale, RateFamily,
-                             check_prior, get_family)
+                             SamplingCoordinates, check_prior, get_family)
 
 __all__ = [
     "MODEL_PRIORS",
@@ -358,7 +358,7 @@ def _prior_logp(spec: Mapping[str, Any], value: Any):
     return pm.logp(cls.dist(**kw), value)
 
 
-def _coordinate_parameters(coords: Any, priors: Mapping[str, Mapping[str, Any]]) -> dict[str, Any]:
+def _coordinate_parameters(coords: SamplingCoordinates, priors: Mapping[str, Mapping[str, Any]]) -> dict[str, Any]:
     """Flat coordinates, the named parameters they determine (Deterministics) and their
     prior density with the Jacobian (the Potential ``coordinate_prior``); see
     :class:`infer.families.SamplingCoordinates`. Must be called inside a model context."""
@@ -572,9 +572,9 @@ def build_count_model(data: CountData, family: str | RateFamily, *, cap: int | N
     sizes = np.arange(cap + 1)
     ops = []
     with pm.Model(coords=coords) as model:
-        coords_ = fam.sampling_coordinates(scale)
-        params: dict[str, Any] = (_coordinate_parameters(coords_, resolved)
-                                  if coords_ is not None else {})
+        sampler_coords = fam.sampling_coordinates(scale)
+        params: dict[str, Any] = (_coordinate_parameters(sampler_coords, resolved)
+                                  if sampler_coords is not None else {})
         for spec in fam.free_parameters:
             if spec.name not in params:
                 params[spec.name] = _make_rv(spec.name, resolved[spec.name],
