@@ -46,6 +46,7 @@ recorded in the run's settings and printed by :meth:`RateFamily.describe`.
 from __future__ import annotations
 
 import math
+from abc import ABC, abstractmethod
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any, ClassVar
@@ -295,7 +296,7 @@ class _Tensor:
 
 
 # --------------------------------------------------------------------------- coordinates
-class SamplingCoordinates:
+class SamplingCoordinates(ABC):
     """Unconstrained coordinates the sampler moves in instead of some named parameters.
 
     NUTS sees each named parameter on its own log (or logit) scale by default. Where
@@ -319,6 +320,7 @@ class SamplingCoordinates:
     replaces: tuple[str, ...] = ()
     description: str = ""
 
+    @abstractmethod
     def to_parameters(self, xp: Any, y: Mapping[str, Any]) -> tuple[dict[str, Any], Any]:
         """The named parameters at coordinates ``y`` and log |det ∂θ/∂y|.
 
@@ -329,8 +331,8 @@ class SamplingCoordinates:
         Returns:
             ({parameter name: value} for every name in ``replaces``, log-Jacobian).
         """
-        raise NotImplementedError
 
+    @abstractmethod
     def from_parameters(self, p: Mapping[str, float]) -> dict[str, float]:
         """Coordinates of a parameter point (the inverse map; used for the initial point).
 
@@ -340,7 +342,6 @@ class SamplingCoordinates:
         Returns:
             {coordinate name: float}.
         """
-        raise NotImplementedError
 
     def initial_point(self, p: Mapping[str, float]) -> dict[str, float]:
         """Coordinates of a starting point for the sampler at (or, if ``p`` is outside

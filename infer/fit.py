@@ -273,10 +273,8 @@ def _sample_prior(cm: CountModel, n: int, seed: int) -> xr.Dataset:
     dims = cm.model.named_vars_to_dims
     out = {}
     for name, v in draws.items():
-        extra = tuple(dims.get(name, ()))
-        if np.ndim(v) - 1 != len(extra):
-            extra = tuple(f"{name}_dim_{i}" for i in range(np.ndim(v) - 1))
-        out[name] = (("chain", "draw") + extra, np.asarray(v, dtype=float)[None])
+        out[name] = (("chain", "draw") + tuple(dims.get(name) or ()),
+                     np.asarray(v, dtype=float)[None])
     coords = {k: list(v) for k, v in cm.model.coords.items()
               if any(k in spec[0] for spec in out.values())}
     return xr.Dataset(out, coords={"chain": [0], "draw": np.arange(n), **coords})

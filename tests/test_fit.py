@@ -24,7 +24,7 @@ from scipy.linalg import expm
 from chain import BirthDeathChain
 from infer.data import CountData, load_counts
 from infer.errors import CapTooSmallError, InputError
-from infer.families import DataScale, Linear, Logistic, ParameterSpec, RateFamily
+from infer.families import DataScale, Linear, Logistic, ParameterSpec, PerSize, RateFamily
 from infer.fit import compare_families, fit_counts, save_posterior
 from infer.likelihood import log_likelihood
 from infer.model import (DetectionWarning, PoolingWarning, build_count_model, build_model,
@@ -386,3 +386,24 @@ def test_priors_that_barely_meet_the_logistic_support_stop_before_sampling():
     with pytest.raises(InputError, match="support"):
         fit_counts(data, "logistic", priors=priors, chains=1, draws=5, tune=5,
                    progressbar=False)
+
+
+@pytest.mark.parametrize("family,pooling", [(PerSize(knots=4), False), (Logistic(), True)],
+                         ids=["per-size", "pooled logistic"])
+def test_prior_group_has_the_models_variables_and_dimensions(family, pooling):
+    # common practice (ArviZ InferenceData schema): the prior group is labelled like the
+    # posterior — the same names and the same named dimensions as the model's variables
+    from infer.fit import _sample_prior
+
+    data = load_counts(EXAMPLES / "five_dunes.csv")
+    cm = build_count_model(data, family, detection=0.7, pooling=pooling)
+    prior = _sample_prior(cm, 25, seed=3)
+    for name in cm.var_names:
+        assert name in prior, name
+        dims = tuple(cm.model.named_vars_to_dims.get(name) or ())
+        assert prior[name].dims == ("chain", "draw") + dims
+        assert np.all(np.isfinite(prior[name].values))
+    if pooling:
+        np.testing.assert_allclose(prior["site_birth_rate"].values,
+                                   prior["birth_rate"].values[..., None]
+                                   * np.exp(prior["site_offset"].values))
