@@ -39,7 +39,7 @@ from scipy import linalg
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from chain import BirthDeathChain  # noqa: E402
+from tallyfit.chain import BirthDeathChain  # noqa: E402
 
 
 def rates(n_cap: int, immigration: float = 1.0) -> tuple[np.ndarray, np.ndarray]:

@@ -17,9 +17,9 @@ import numpy as np
 import scipy.linalg as sl
 import xarray as xr
 
-from infer.derive import PushForwardSpec, horizons_with_iucn, push_forward
-from infer.families import get_family
-from infer.scenarios import BASELINE
+from tallyfit.infer.derive import PushForwardSpec, horizons_with_iucn, push_forward
+from tallyfit.infer.families import get_family
+from tallyfit.infer.scenarios import BASELINE
 
 
 def posterior(n: int, seed: int = 0) -> xr.Dataset:

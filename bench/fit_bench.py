@@ -38,8 +38,8 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from infer.data import load_counts  # noqa: E402
-from infer.families import get_family  # noqa: E402
+from tallyfit.infer.data import load_counts  # noqa: E402
+from tallyfit.infer.families import get_family  # noqa: E402
 
 EXAMPLES = ROOT / "example_counts"
 
@@ -78,8 +78,8 @@ def run_one(name: str, *, chains: int, draws: int, tune: int, cores: int, seed: 
     """
     import arviz as az
 
-    from infer import fit as fitmod
-    from infer.model import build_count_model
+    from tallyfit.infer import fit as fitmod
+    from tallyfit.infer.model import build_count_model
 
     s = demo_settings(name)
     t0 = time.perf_counter()

@@ -32,8 +32,8 @@ from scipy.special import gammaln  # noqa: E402
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 
-from chain import BirthDeathChain  # noqa: E402
-from infer.likelihood import CountLikelihoodOp  # noqa: E402
+from tallyfit.chain import BirthDeathChain  # noqa: E402
+from tallyfit.infer.likelihood import CountLikelihoodOp  # noqa: E402
 
 try:  # whichever exists in this PyTensor
     from pytensor.tensor.linalg import expm  # type: ignore[attr-defined]

@@ -41,9 +41,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from scipy import stats  # noqa: E402
 
-from chain import BirthDeathChain  # noqa: E402
-from infer.data import CountData  # noqa: E402
-from infer.families import Linear, Logistic  # noqa: E402
+from tallyfit.chain import BirthDeathChain  # noqa: E402
+from tallyfit.infer.data import CountData  # noqa: E402
+from tallyfit.infer.families import Linear, Logistic  # noqa: E402
 
 #: Fixed simulation design and priors per family.
 DESIGNS = {
@@ -64,7 +64,7 @@ def one_replicate(args: tuple) -> dict:
     """Draw θ, simulate, fit, and return the ranks and interval hits of one replicate."""
     import arviz as az
 
-    from infer.fit import fit_counts
+    from tallyfit.infer.fit import fit_counts
 
     family_name, rep, seed, draws, tune, thin_to = args
     design = DESIGNS[family_name]

@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 import tomli_w
 
-from chain import BirthDeathChain
+from tallyfit.chain import BirthDeathChain
 
 HERE = Path(__file__).resolve().parent
 

@@ -12,10 +12,10 @@ __all__ = ["load_counts", "CountData", "log_likelihood", "log_likelihood_grad",
            "pointwise_log_likelihood", "InputError"]
 
 _LAZY = {
-    "load_counts": "infer.data", "CountData": "infer.data",
-    "log_likelihood": "infer.likelihood", "log_likelihood_grad": "infer.likelihood",
-    "pointwise_log_likelihood": "infer.likelihood",
-    "InputError": "infer.errors",
+    "load_counts": "tallyfit.infer.data", "CountData": "tallyfit.infer.data",
+    "log_likelihood": "tallyfit.infer.likelihood", "log_likelihood_grad": "tallyfit.infer.likelihood",
+    "pointwise_log_likelihood": "tallyfit.infer.likelihood",
+    "InputError": "tallyfit.infer.errors",
 }
 
 

@@ -33,7 +33,7 @@ from typing import Any, NamedTuple
 import numpy as np
 import pandas as pd
 
-from infer.errors import CountsFileError, InputError
+from tallyfit.infer.errors import CountsFileError, InputError
 
 __all__ = [
     "REQUIRED_COLUMNS",

@@ -26,7 +26,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import xarray as xr
 
-from chain import BirthDeathChain, ChainError
+from tallyfit.chain import BirthDeathChain, ChainError
 from .scenarios import BASELINE, Scenario
 
 #: Key of a draw's per-site parameters under partial pooling (a list in the order of spec.sites).

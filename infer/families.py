@@ -53,7 +53,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from infer.errors import InputError
+from tallyfit.infer.errors import InputError
 
 __all__ = [
     "DataScale",

@@ -37,10 +37,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from infer.data import CountData, load_counts
-from infer.errors import InputError
-from infer.families import RateFamily, get_family
-from infer.model import (CountModel, build_count_model, draw_log_likelihood,
+from tallyfit.infer.data import CountData, load_counts
+from tallyfit.infer.errors import InputError
+from tallyfit.infer.families import RateFamily, get_family
+from tallyfit.infer.model import (CountModel, build_count_model, draw_log_likelihood,
                          pointwise_log_likelihood, site_draws)
 
 __all__ = [
@@ -257,7 +257,7 @@ def _sample_prior(cm: CountModel, n: int, seed: int) -> xr.Dataset:
     forward-sampling the PyMC model: a model sampled in other coordinates holds the
     prior as a density, which cannot be forward-sampled.
     """
-    from infer.families import scipy_prior
+    from tallyfit.infer.families import scipy_prior
 
     rng = np.random.default_rng(seed)
     draws = cm.family.draw_prior(cm.priors, n, rng)
@@ -366,7 +366,7 @@ def simulate_posterior_counts(cm: CountModel, posterior: xr.Dataset, n_draws: in
         Dataset with ``counts`` (chain, draw, count_cell) and ``size``
         (chain, draw, occasion); draw coords are the selected draw numbers.
     """
-    from chain import BirthDeathChain
+    from tallyfit.chain import BirthDeathChain
 
     n_chain = posterior.sizes["chain"]
     n_draw = posterior.sizes["draw"]

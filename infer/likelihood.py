@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 from scipy.special import gammaln, logsumexp
 
-from chain.uniformization import hidden_forward_backward, pair_log_likelihood_grad
+from tallyfit.chain.uniformization import hidden_forward_backward, pair_log_likelihood_grad
 
 from .errors import (CapTooSmallError, CountValueError, InvalidRatesError,
                      LikelihoodUnderflowError, ReplicateMismatchError)

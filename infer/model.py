@@ -41,10 +41,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from infer.data import CountData
-from infer.errors import InputError, InvalidRatesError, LikelihoodUnderflowError
-from infer.likelihood import CountLikelihoodGradOp, CountLikelihoodOp
-from infer.families import (MODEL_PARAMETERS, PRIOR_DISTRIBUTIONS, DataScale, RateFamily,
+from tallyfit.infer.data import CountData
+from tallyfit.infer.errors import InputError, InvalidRatesError, LikelihoodUnderflowError
+from tallyfit.infer.likelihood import CountLikelihoodGradOp, CountLikelihoodOp
+from tallyfit.infer.families import (MODEL_PARAMETERS, PRIOR_DISTRIBUTIONS, DataScale, RateFamily,
                              SamplingCoordinates, check_prior, get_family)
 
 __all__ = [
@@ -364,7 +364,7 @@ def _coordinate_parameters(coords: SamplingCoordinates, priors: Mapping[str, Map
     :class:`infer.families.SamplingCoordinates`. Must be called inside a model context."""
     import pymc as pm
 
-    from infer.families import _Tensor, scipy_prior
+    from tallyfit.infer.families import _Tensor, scipy_prior
 
     start = coords.initial_point({k: float(scipy_prior(priors[k]).median())
                                   for k in coords.replaces})
@@ -501,7 +501,7 @@ def build_count_model(data: CountData, family: str | RateFamily, *, cap: int | N
     if not isinstance(data, CountData):
         raise InputError(f"data must be CountData (see infer.data.load_counts), not "
                          f"{type(data).__name__}", source="data")
-    from infer.errors import CapTooSmallError
+    from tallyfit.infer.errors import CapTooSmallError
 
     det = normalise_detection(detection)
     fam = get_family(family)
@@ -692,7 +692,7 @@ def _likelihood_evaluator(data: Any, detection: float | str | None):
     Uses the likelihood module's prepared-data object, so that thousands of draws do
     not each re-plan the data (which costs ~40x an evaluation).
     """
-    from infer import likelihood as lk
+    from tallyfit.infer import likelihood as lk
 
     if isinstance(data, tuple):
         return lk._Prepared(data[0], data[1], detection)

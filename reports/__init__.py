@@ -12,11 +12,11 @@ __all__ = ["build_report", "load_run", "RunFolder", "RunFolderError", "run_check
            "Thresholds", "CAUTION", "FIGURE_NAMES"]
 
 _LAZY = {
-    "build_report": "reports.report", "FIGURE_NAMES": "reports.report",
-    "load_run": "reports.run_folder", "RunFolder": "reports.run_folder", "RunFolderError": "reports.run_folder",
-    "run_checks": "reports.checks", "CheckReport": "reports.checks", "Check": "reports.checks",
-    "Thresholds": "reports.checks",
-    "CAUTION": "reports.narrative",
+    "build_report": "tallyfit.reports.report", "FIGURE_NAMES": "tallyfit.reports.report",
+    "load_run": "tallyfit.reports.run_folder", "RunFolder": "tallyfit.reports.run_folder", "RunFolderError": "tallyfit.reports.run_folder",
+    "run_checks": "tallyfit.reports.checks", "CheckReport": "tallyfit.reports.checks", "Check": "tallyfit.reports.checks",
+    "Thresholds": "tallyfit.reports.checks",
+    "CAUTION": "tallyfit.reports.narrative",
 }
 
 

@@ -5,9 +5,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from chain import BirthDeathChain
-from infer.batch import run_batch, site_folder_name
-from infer.config import RunSettings
+from tallyfit.chain import BirthDeathChain
+from tallyfit.batch import run_batch, site_folder_name
+from tallyfit.inputs.settings import RunSettings
 
 
 @pytest.fixture(scope="module")

@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 from scipy import linalg, stats
 
-from chain import BirthDeathChain, StepChain
-from chain.errors import ChainError
+from tallyfit.chain import BirthDeathChain, StepChain
+from tallyfit.chain.errors import ChainError
 from reference import generator
 
 

@@ -13,8 +13,8 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from chain import BirthDeathChain, StepChain
-from chain.errors import CapTooLargeError, ChainError, RateError
+from tallyfit.chain import BirthDeathChain, StepChain
+from tallyfit.chain.errors import CapTooLargeError, ChainError, RateError
 
 
 def names_size(message: str, size: int) -> bool:

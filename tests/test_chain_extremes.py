@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from hypothesis import given, settings, strategies as st
 
-from chain import BirthDeathChain
+from tallyfit.chain import BirthDeathChain
 
 SETTINGS = dict(deadline=None, max_examples=25)
 

@@ -14,7 +14,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import linalg, stats
 
-from chain import BirthDeathChain, StepChain
+from tallyfit.chain import BirthDeathChain, StepChain
 from reference import generator
 
 SETTINGS = dict(deadline=None, suppress_health_check=[HealthCheck.too_slow])

@@ -15,9 +15,9 @@ import pytest
 import xarray as xr
 from PIL import Image
 
-from chain import BirthDeathChain
-from infer.cli import main
-from infer.run import RUN_FILES
+from tallyfit.chain import BirthDeathChain
+from tallyfit.cli import main
+from tallyfit.runfolder.store import RUN_FILES
 
 FAST = ["--chains", "2", "--draws", "150", "--tune", "150", "--max-size", "60", "--seed", "7", "--quiet"]
 

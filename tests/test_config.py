@@ -8,10 +8,10 @@ import string
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from infer.cli import main
-from infer.config import RunSettings, load_settings
-from infer.errors import InputError
-from infer.solve import load_rates_file, solve_rates
+from tallyfit.cli import main
+from tallyfit.inputs.settings import RunSettings, load_settings
+from tallyfit.infer.errors import InputError
+from tallyfit.solve import load_rates_file, solve_rates
 
 BAD_RUN_TOML = [
     ("[fit\nchains = 4", "not valid TOML"),

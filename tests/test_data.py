@@ -17,8 +17,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-import infer.data as data_mod
-from infer.data import (
+import tallyfit.infer.data as data_mod
+from tallyfit.infer.data import (
     DEFAULT_SITE,
     MAX_EXACT_COUNT,
     CountData,
@@ -28,7 +28,7 @@ from infer.data import (
     iter_transitions,
     load_counts,
 )
-from infer.errors import CountsFileError, InputError
+from tallyfit.infer.errors import CountsFileError, InputError
 
 # --------------------------------------------------------------------------- malformed
 

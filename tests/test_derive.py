@@ -6,12 +6,12 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from chain import BirthDeathChain
-from infer.derive import (CATEGORIES, PushForwardSpec, horizons_with_iucn, iucn_category, iucn_horizons,
+from tallyfit.chain import BirthDeathChain
+from tallyfit.infer.derive import (CATEGORIES, PushForwardSpec, horizons_with_iucn, iucn_category, iucn_horizons,
                           push_forward, summarise)
-from infer.families import get_family
-from infer.scenarios import BASELINE, Scenario, scenarios_from_table
-from infer.errors import InputError
+from tallyfit.infer.families import get_family
+from tallyfit.infer.scenarios import BASELINE, Scenario, scenarios_from_table
+from tallyfit.infer.errors import InputError
 
 
 def _posterior(values: dict[str, list[float]]) -> xr.Dataset:

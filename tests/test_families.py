@@ -13,8 +13,8 @@ import pytensor
 import pytensor.tensor as pt
 from scipy import stats
 
-from infer.errors import InputError
-from infer.families import (FAMILIES, Allee, DataScale, Linear, Logistic, PerSize, check_prior,
+from tallyfit.infer.errors import InputError
+from tallyfit.infer.families import (FAMILIES, Allee, DataScale, Linear, Logistic, PerSize, check_prior,
                             get_family, scipy_prior)
 
 SCALE = DataScale(time_scale=1.0, count_scale=30.0, size_lo=3.0, size_hi=60.0)
@@ -237,7 +237,7 @@ def test_describe_states_formula_and_priors():
 def test_regulated_coordinates_invert_and_jacobian_matches_finite_differences(immigration):
     # change of variables (common practice): the stated log|det ∂θ/∂y| against the
     # log-determinant (numpy.linalg.slogdet) of a central-difference Jacobian
-    from infer.families import RegulatedCoordinates, _Numpy
+    from tallyfit.infer.families import RegulatedCoordinates, _Numpy
 
     coords = RegulatedCoordinates(count_scale=SCALE.count_scale, immigration=immigration)
     theta = {"birth_rate": 0.9, "death_rate": 0.2, "carrying_capacity": 45.0}
@@ -263,7 +263,7 @@ def test_regulated_coordinates_invert_and_jacobian_matches_finite_differences(im
 
 
 def test_regulated_coordinates_refuse_points_outside_b_above_d():
-    from infer.families import RegulatedCoordinates
+    from tallyfit.infer.families import RegulatedCoordinates
 
     coords = RegulatedCoordinates(count_scale=30.0, immigration=False)
     with pytest.raises(InputError, match="b > d"):
@@ -300,9 +300,9 @@ def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian():
     # coordinates, equals Σ log p_k(θ_k) (scipy.stats densities) + log|det ∂θ/∂y|
     import pytensor as _pt
 
-    from infer.data import CountData
-    from infer.families import _Numpy
-    from infer.model import build_count_model
+    from tallyfit.infer.data import CountData
+    from tallyfit.infer.families import _Numpy
+    from tallyfit.infer.model import build_count_model
 
     data = CountData.single(np.arange(8.0), np.array([20, 24, 27, 31, 30, 33, 29, 32.0]))
     cm = build_count_model(data, Logistic(immigration=True))

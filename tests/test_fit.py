@@ -21,13 +21,13 @@ import pytest
 from scipy import stats
 from scipy.linalg import expm
 
-from chain import BirthDeathChain
-from infer.data import CountData, load_counts
-from infer.errors import CapTooSmallError, InputError
-from infer.families import DataScale, Linear, Logistic, ParameterSpec, PerSize, RateFamily
-from infer.fit import compare_families, fit_counts, save_posterior
-from infer.likelihood import log_likelihood
-from infer.model import (DetectionWarning, PoolingWarning, build_count_model, build_model,
+from tallyfit.chain import BirthDeathChain
+from tallyfit.infer.data import CountData, load_counts
+from tallyfit.infer.errors import CapTooSmallError, InputError
+from tallyfit.infer.families import DataScale, Linear, Logistic, ParameterSpec, PerSize, RateFamily
+from tallyfit.infer.fit import compare_families, fit_counts, save_posterior
+from tallyfit.infer.likelihood import log_likelihood
+from tallyfit.infer.model import (DetectionWarning, PoolingWarning, build_count_model, build_model,
                          default_cap, normalise_detection)
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "example_counts"
@@ -355,7 +355,7 @@ def test_fast_end_to_end_fit_on_small_demo():
 def test_demo_recovery(name, family, options):
     # truth inside the 90% interval for every parameter (copper_tarn: the net growth
     # rate, see test_fast_end_to_end_fit_on_small_demo); diagnostics must pass
-    from infer.families import get_family
+    from tallyfit.infer.families import get_family
 
     meta_truth = _truth(name)
     detection = "estimate" if name == "five_dunes" else None
@@ -393,7 +393,7 @@ def test_priors_that_barely_meet_the_logistic_support_stop_before_sampling():
 def test_prior_group_has_the_models_variables_and_dimensions(family, pooling):
     # common practice (ArviZ InferenceData schema): the prior group is labelled like the
     # posterior — the same names and the same named dimensions as the model's variables
-    from infer.fit import _sample_prior
+    from tallyfit.infer.fit import _sample_prior
 
     data = load_counts(EXAMPLES / "five_dunes.csv")
     cm = build_count_model(data, family, detection=0.7, pooling=pooling)

@@ -12,9 +12,9 @@ import pytest
 import scipy.linalg as sla
 from scipy import stats
 
-from infer.errors import (CapTooSmallError, CountValueError, InputError, InvalidRatesError,
+from tallyfit.infer.errors import (CapTooSmallError, CountValueError, InputError, InvalidRatesError,
                           LikelihoodUnderflowError, ReplicateMismatchError)
-from infer.likelihood import (CountLikelihoodOp, evaluate_likelihood, log_likelihood,
+from tallyfit.infer.likelihood import (CountLikelihoodOp, evaluate_likelihood, log_likelihood,
                               log_likelihood_grad, pointwise_log_likelihood)
 from reference import generator
 

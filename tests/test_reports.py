@@ -25,21 +25,21 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from infer.data import load_counts
-from infer.derive import PushForwardSpec, horizons_with_iucn, push_forward, summarise
-from infer.families import get_family, scipy_prior
-from infer.fit import check_cap, diagnose, observed_data_group, simulate_posterior_counts
-from infer.model import build_count_model, pointwise_log_likelihood
-from infer.run import CAUTION as RUN_CAUTION
-from infer.run import write_run_toml
-from infer.scenarios import BASELINE, Scenario
-from reports import build_report
-from reports.checks import run_checks
-from reports.html import format_probability
-from reports.narrative import CAUTION
-from reports.predictive import predictive_bands
-from reports.run_folder import RunFolderError, load_run
-from reports.tables import category_table, extinction_table, scenario_differences, trend_table
+from tallyfit.infer.data import load_counts
+from tallyfit.infer.derive import PushForwardSpec, horizons_with_iucn, push_forward, summarise
+from tallyfit.infer.families import get_family, scipy_prior
+from tallyfit.infer.fit import check_cap, diagnose, observed_data_group, simulate_posterior_counts
+from tallyfit.infer.model import build_count_model, pointwise_log_likelihood
+from tallyfit.runfolder.store import CAUTION as RUN_CAUTION
+from tallyfit.runfolder.store import write_run_toml
+from tallyfit.infer.scenarios import BASELINE, Scenario
+from tallyfit.reports import build_report
+from tallyfit.reports.checks import run_checks
+from tallyfit.reports.html import format_probability
+from tallyfit.reports.narrative import CAUTION
+from tallyfit.reports.predictive import predictive_bands
+from tallyfit.reports.run_folder import RunFolderError, load_run
+from tallyfit.reports.tables import category_table, extinction_table, scenario_differences, trend_table
 
 PIL = pytest.importorskip("PIL.Image")
 
@@ -94,7 +94,7 @@ def _fit_groups(chains: int, draws: int, seed: int, divergent: int = 0,
 def _summary(idata: az.InferenceData, diagnostics: dict, cap_check: dict, ds: xr.Dataset,
              warnings: list[str]) -> dict:
     """summary.json laid out as infer.pipeline writes it."""
-    from infer.fit import parameter_table
+    from tallyfit.infer.fit import parameter_table
 
     table = parameter_table(idata, list(CENTRE), diagnostics)
     return {"caution": RUN_CAUTION,

@@ -8,8 +8,8 @@ import arviz as az
 import numpy as np
 import pytest
 
-from infer.cli import main
-from infer.run import RUN_FILES, audit_run, sha256_file, staged_folder, write_run_toml
+from tallyfit.cli import main
+from tallyfit.runfolder.store import RUN_FILES, audit_run, sha256_file, staged_folder, write_run_toml
 
 
 def test_staged_folder_renames_only_when_complete(tmp_path):

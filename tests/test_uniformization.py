@@ -7,8 +7,8 @@ import pytest
 import scipy.linalg as sla
 from scipy import stats
 
-from chain.errors import RateError
-from chain.uniformization import (hidden_forward_backward, pair_log_likelihood_grad,
+from tallyfit.chain.errors import RateError
+from tallyfit.chain.uniformization import (hidden_forward_backward, pair_log_likelihood_grad,
                                   transition_rows)
 from reference import generator
 
@@ -266,7 +266,7 @@ def test_weighted_transition_grad_matches_expm_and_differences():
         P = sla.expm(generator(bb, dd) * t)
         return float(np.sum(G * P[np.ix_(starts, ends)]))
 
-    from chain.uniformization import weighted_transition_grad
+    from tallyfit.chain.uniformization import weighted_transition_grad
     val, gb, gd, bound = weighted_transition_grad(b, d, starts, ends, G, t)
     assert abs(val - ref(b, d)) <= 1e-12
     assert bound <= 1e-14

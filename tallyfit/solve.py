@@ -28,9 +28,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from chain import BirthDeathChain
-from .derive import CATEGORIES, iucn_category, iucn_horizons
-from .errors import InputError
+from tallyfit.chain import BirthDeathChain
+from tallyfit.infer.derive import CATEGORIES, iucn_category, iucn_horizons
+from tallyfit.infer.errors import InputError
 
 _KEYS = {"family", "immigration", "cap", "start", "horizons", "thresholds", "generation_time",
          "parameters", "birth", "death", "detection"}
@@ -113,7 +113,7 @@ def load_rates_file(path: str | Path) -> RateSpecFile:
             raise InputError("'birth' and 'death' must be lists of numbers", source=source, column="birth") from None
         cap = birth.size - 1
     elif "family" in doc:
-        from .families import get_family
+        from tallyfit.infer.families import get_family
 
         fam = get_family(doc["family"], immigration=bool(doc.get("immigration", "immigration" in doc.get("parameters", {}))))
         params = doc.get("parameters")

@@ -86,7 +86,7 @@ def _say(args: argparse.Namespace, text: str) -> None:
 
 
 def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettings | None" = None) -> int:
-    from .pipeline import run_pipeline
+    from tallyfit.pipeline import run_pipeline
 
     settings = _settings_from_args(args, base)
     outcome = run_pipeline(counts, settings, out, progress=not args.quiet,
@@ -108,8 +108,8 @@ def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettin
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .config import RunSettings
-    from .scenarios import Scenario
+    from tallyfit.inputs.settings import RunSettings
+    from tallyfit.infer.scenarios import Scenario
 
     # A small isolated population in decline: extinction risk, criterion E and two remedies.
     base = RunSettings(rates="linear", immigration=False, generation_time=2.0, thresholds=(0, 5),
@@ -125,8 +125,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _settings_from_args(args: argparse.Namespace, base: "RunSettings | None" = None) -> "RunSettings":
-    from .config import load_settings
-    from .errors import InputError
+    from tallyfit.inputs.settings import load_settings
+    from tallyfit.infer.errors import InputError
 
     settings = load_settings(getattr(args, "config", None), base)
     detection = getattr(args, "detection", None)
@@ -143,7 +143,7 @@ def _settings_from_args(args: argparse.Namespace, base: "RunSettings | None" = N
 
 
 def _cmd_batch(args: argparse.Namespace) -> int:
-    from .batch import run_batch
+    from tallyfit.batch import run_batch
 
     settings = _settings_from_args(args)
     index = run_batch(args.counts, settings, args.out, by=args.by, scheduler=args.scheduler,
@@ -160,7 +160,7 @@ def _cmd_batch(args: argparse.Namespace) -> int:
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
-    from .run import audit_run
+    from tallyfit.runfolder.store import audit_run
 
     res = audit_run(args.run)
     for name, ok, detail in res.checks:
@@ -173,7 +173,7 @@ def _cmd_audit(args: argparse.Namespace) -> int:
 
 
 def _cmd_solve(args: argparse.Namespace) -> int:
-    from .solve import load_rates_file, solve_rates
+    from tallyfit.solve import load_rates_file, solve_rates
 
     spec = load_rates_file(args.rates)
     result = solve_rates(spec)
@@ -186,11 +186,11 @@ def _cmd_solve(args: argparse.Namespace) -> int:
 
 
 def _cmd_simulate(args: argparse.Namespace) -> int:
-    from .solve import load_rates_file, simulate_counts
+    from tallyfit.solve import load_rates_file, simulate_counts
 
     spec = load_rates_file(args.rates)
     table = simulate_counts(spec, args.times, sites=args.sites, seed=args.seed)
-    from .run import write_atomic
+    from tallyfit.runfolder.store import write_atomic
 
     args.out.parent.mkdir(parents=True, exist_ok=True)
     write_atomic(args.out, table.to_csv(index=False))
@@ -205,10 +205,10 @@ COMMANDS = {"demo": _cmd_demo, "fit": lambda a: _run_fit(a, a.counts, a.out), "s
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``tallyfit`` console script; returns the exit code."""
     args = _parser().parse_args(argv)
-    from .errors import InputError
+    from tallyfit.infer.errors import InputError
 
     try:
-        from chain.errors import ChainError
+        from tallyfit.chain.errors import ChainError
     except ImportError:  # pragma: no cover
         ChainError = ValueError  # type: ignore[misc]
     try:

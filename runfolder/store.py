@@ -176,7 +176,7 @@ def audit_run(folder: str | Path) -> AuditResult:
         try:
             import arviz as az
 
-            from .fit import diagnose
+            from tallyfit.infer.fit import diagnose
 
             idata = az.from_netcdf(folder / "posterior.nc")
             diag = diagnose(idata, [str(v) for v in idata.posterior.data_vars])

@@ -14,11 +14,11 @@ from typing import Any, Callable
 import numpy as np
 import pandas as pd
 
-from .config import RunSettings
-from .data import CountData, load_counts
-from .derive import PushForwardSpec, horizons_with_iucn, push_forward, summarise
-from .run import CAUTION, staged_folder, write_atomic, write_run_toml
-from .scenarios import BASELINE
+from tallyfit.inputs.settings import RunSettings
+from tallyfit.infer.data import CountData, load_counts
+from tallyfit.infer.derive import PushForwardSpec, horizons_with_iucn, push_forward, summarise
+from tallyfit.runfolder.store import CAUTION, staged_folder, write_atomic, write_run_toml
+from tallyfit.infer.scenarios import BASELINE
 
 
 @dataclass
@@ -97,8 +97,8 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     Raises:
         InputError: bad counts or settings (nothing is written).
     """
-    from .families import get_family
-    from .fit import fit_counts
+    from tallyfit.infer.families import get_family
+    from tallyfit.infer.fit import fit_counts
 
     import os
 
@@ -115,7 +115,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
                             priors=settings.priors or None, pooling=settings.pooling, progressbar=progress,
                             cores=cores, target_accept=settings.target_accept)
     # our own warnings (e.g. detection estimated without replicate surveys) go to the report
-    messages = [str(w.message) for w in caught if w.category.__module__.startswith("infer")]
+    messages = [str(w.message) for w in caught if w.category.__module__.startswith("tallyfit")]
     messages += [m for m in result.messages if m not in messages]
     post = result.idata.posterior
     if settings.max_draws is not None and post.sizes["chain"] * post.sizes["draw"] > settings.max_draws:
@@ -180,7 +180,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         write_run_toml(tmp, {**settings.as_dict(), **{k: v for k, v in result.settings.items()
                                                       if isinstance(v, (int, float, str, bool))}},
                        extra={"run": {"seed": settings.seed, "cap": int(result.cap)}})
-        from reports import build_report
+        from tallyfit.reports import build_report
 
         build_report(tmp)
     base_ext = base.get("extinction_probability_all_sites", {}).get("threshold=0", {})

@@ -19,8 +19,8 @@ from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping
 
-from .errors import InputError
-from .scenarios import Scenario, scenarios_from_table
+from tallyfit.infer.errors import InputError
+from tallyfit.infer.scenarios import Scenario, scenarios_from_table
 
 _FIT_KEYS = {"rates": str, "immigration": bool, "chains": int, "draws": int, "tune": int,
              "seed": int, "max_size": int, "detection": (float, int, str), "pooling": bool,

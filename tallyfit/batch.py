@@ -14,10 +14,10 @@ from typing import Any, Callable
 
 import pandas as pd
 
-from .config import RunSettings
-from .data import CountData, load_counts
-from .errors import InputError
-from .run import RUN_FILES, write_atomic
+from tallyfit.inputs.settings import RunSettings
+from tallyfit.infer.data import CountData, load_counts
+from tallyfit.infer.errors import InputError
+from tallyfit.runfolder.store import RUN_FILES, write_atomic
 
 INDEX_COLUMNS = ["site", "folder", "status", "detail", "diagnostics_passed", "stationary_exists_probability",
                  "p_extinct_100", "iucn_most_probable"]
@@ -36,7 +36,7 @@ def is_complete(folder: Path) -> bool:
 
 def _run_site(site: str, table: pd.DataFrame, settings: RunSettings, folder: str) -> dict[str, Any]:
     """Fit one site in a worker; never raises (a failure is returned as a status)."""
-    from .pipeline import run_pipeline
+    from tallyfit.pipeline import run_pipeline
 
     row: dict[str, Any] = {"site": site, "folder": folder}
     try:
