@@ -17,7 +17,8 @@ import numpy as np
 import scipy.linalg as sl
 import xarray as xr
 
-from tallyfit.infer.derive import PushForwardSpec, horizons_with_iucn, push_forward
+from tallyfit.infer.criterion_e import horizons_with_criterion_e
+from tallyfit.infer.pushforward import PushForwardSpec, push_forward
 from tallyfit.infer.families import get_family
 from tallyfit.infer.scenarios import BASELINE
 
@@ -62,7 +63,7 @@ def main() -> None:
     args = ap.parse_args()
     fam = get_family("logistic", immigration=True)
     post = posterior(args.draws)
-    spec = PushForwardSpec(cap=args.cap, sites=("site",), starts=(60,), horizons=horizons_with_iucn([5, 50], None))
+    spec = PushForwardSpec(cap=args.cap, sites=("site",), starts=(60,), horizons=horizons_with_criterion_e([5, 50], None))
     push_forward(fam, post.isel(draw=slice(0, 2)), spec, [BASELINE], workers=1)  # compile
     t0 = time.perf_counter()
     ds = push_forward(fam, post, spec, [BASELINE], workers=args.workers)

@@ -4,7 +4,7 @@ Baseline: the hand-written PyMC/PyTensor model — the full (N+1)×(N+1) generat
 from rate tensors, PyTensor's matrix exponential (one per distinct interval length),
 log of the needed entries (or, with detection, the dense forward algorithm over all
 sizes 0..N), and pytensor.grad for the gradient, compiled once with pytensor.function.
-Ours: infer.likelihood.CountLikelihoodOp compiled the same way (value and gradient).
+Ours: infer.likelihood.op.CountLikelihoodOp compiled the same way (value and gradient).
 
 Chain: λ_n = 0.6 n + 0.5, μ_n = n (0.3 + 0.3 n / K) with K = 0.4 N; data simulated
 exactly from the chain (chain.BirthDeathChain.simulate) at yearly censuses from K.
@@ -33,7 +33,7 @@ from scipy.special import gammaln  # noqa: E402
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 
 from tallyfit.chain import BirthDeathChain  # noqa: E402
-from tallyfit.infer.likelihood import CountLikelihoodOp  # noqa: E402
+from tallyfit.infer.likelihood.op import CountLikelihoodOp  # noqa: E402
 
 try:  # whichever exists in this PyTensor
     from pytensor.tensor.linalg import expm  # type: ignore[attr-defined]

@@ -42,7 +42,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from scipy import stats  # noqa: E402
 
 from tallyfit.chain import BirthDeathChain  # noqa: E402
-from tallyfit.infer.data import CountData  # noqa: E402
+from tallyfit.infer.counts import CountData  # noqa: E402
 from tallyfit.infer.families import Linear, Logistic  # noqa: E402
 
 #: Fixed simulation design and priors per family.

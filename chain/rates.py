@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from typing import Callable, Union
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .errors import RateError
 
@@ -20,15 +21,58 @@ RateSpec = Union[np.ndarray, Callable[[np.ndarray], np.ndarray]]
 MAX_UNBOUNDED_SIZE = 2**22
 
 
-def _check_values(values: np.ndarray, name: str, offset: int = 0) -> None:
+def _check_values(values: np.ndarray, name: str) -> None:
     bad = ~np.isfinite(values) | (values < 0)
     if bad.any():
         n = int(np.flatnonzero(bad)[0])  # the first offending size, whatever the fault
         v = values[n]
-        what = "must be finite" if not np.isfinite(v) else f"is negative ({v!r}); rates must be >= 0"
-        raise RateError(f"{name} rate at size {n + offset} is {v!r}; rates must be finite" if not np.isfinite(v)
-                        else f"{name} rate at size {n + offset} {what}",
-                        name=name, size=n + offset, value=float(v))
+        if np.isfinite(v):
+            message = f"{name} rate at size {n} is negative ({v!r}); rates must be >= 0"
+        else:
+            message = f"{name} rate at size {n} is {v!r}; rates must be finite"
+        raise RateError(message, name=name, size=n, value=float(v))
+
+
+def _check_no_loss_at_zero(down: np.ndarray, down_name: str) -> None:
+    if down[0] != 0:
+        raise RateError(f"{down_name} rate at size 0 is {down[0]!r}; it must be 0 (no loss from an "
+                        "empty population)", name=down_name, size=0, value=float(down[0]))
+
+
+def check_rate_arrays(up: ArrayLike, down: ArrayLike, *, up_name: str = "birth",
+                      down_name: str = "death", min_sizes: int = 2) -> tuple[np.ndarray, np.ndarray, int]:
+    """Check up and down rates given as arrays over sizes 0..N (the one rate validator).
+
+    Args:
+        up, down: array-likes over sizes 0..N (λ_n, μ_n or p_n, q_n).
+        up_name, down_name: names used in messages and on the error ("birth"/"death",
+            "p"/"q").
+        min_sizes: fewest sizes accepted (2 for a chain: sizes 0 and 1).
+
+    Returns:
+        (up, down, N): C-contiguous float64 arrays (the inputs themselves when they are
+        already such arrays, not copies) and the cap N = len - 1.
+
+    Raises:
+        RateError: not 1-D, different lengths, fewer than ``min_sizes`` sizes, a negative,
+            NaN or infinite value (``name``, ``size`` and ``value`` name the first one),
+            or a non-zero down rate at size 0.
+    """
+    up_a = np.asarray(up, dtype=np.float64)
+    down_a = np.asarray(down, dtype=np.float64)
+    if up_a.ndim != 1 or down_a.ndim != 1:
+        raise RateError(f"{up_name} and {down_name} must be 1-D arrays over sizes 0..N, got shapes "
+                        f"{up_a.shape} and {down_a.shape}", name=up_name)
+    if up_a.shape != down_a.shape:
+        raise RateError(f"{up_name} has {up_a.size} sizes but {down_name} has {down_a.size}; "
+                        "give both over the same sizes 0..N", name=up_name)
+    if up_a.size < min_sizes:
+        raise RateError(f"a chain needs at least sizes 0..{min_sizes - 1}; got "
+                        f"{up_a.size} size(s)", name=up_name)
+    _check_values(up_a, up_name)
+    _check_values(down_a, down_name)
+    _check_no_loss_at_zero(down_a, down_name)
+    return np.ascontiguousarray(up_a), np.ascontiguousarray(down_a), up_a.size - 1
 
 
 @dataclass(frozen=True)
@@ -60,26 +104,13 @@ class Rates:
             rates = cls(up, down, up_name, down_name, None)
             rates.upto(8)  # evaluate once so obvious mistakes surface now
             return rates
-        up_a = np.asarray(up, dtype=float)
-        down_a = np.asarray(down, dtype=float)
-        if up_a.ndim != 1 or down_a.ndim != 1:
-            raise RateError(f"{up_name} and {down_name} must be 1-D arrays over sizes 0..N")
-        if up_a.shape != down_a.shape:
-            raise RateError(f"{up_name} has {up_a.size} sizes but {down_name} has {down_a.size}; "
-                            "give both over the same sizes 0..N")
-        if up_a.size < 2:
-            raise RateError(f"a chain needs at least sizes 0 and 1; got {up_a.size} size(s)")
-        _check_values(up_a, up_name)
-        _check_values(down_a, down_name)
-        if down_a[0] != 0:
-            raise RateError(f"{down_name} rate at size 0 is {down_a[0]!r}; it must be 0 (no loss from an empty population)",
-                            name=down_name, size=0, value=float(down_a[0]))
+        up_a, down_a, cap = check_rate_arrays(up, down, up_name=up_name, down_name=down_name)
         up_a = up_a.copy()
         up_a[-1] = 0.0  # the cap reflects: no step up from N
         up_a.setflags(write=False)
         down_a = down_a.copy()
         down_a.setflags(write=False)
-        return cls(up_a, down_a, up_name, down_name, up_a.size - 1)
+        return cls(up_a, down_a, up_name, down_name, cap)
 
     @property
     def finite(self) -> bool:
@@ -105,9 +136,7 @@ class Rates:
                 raise RateError(f"{name} callable returned shape {values.shape} for {m + 1} sizes")
             _check_values(values, name)
             out.append(values)
-        if out[1][0] != 0:
-            raise RateError(f"{self.down_name} rate at size 0 is {out[1][0]!r}; it must be 0",
-                            name=self.down_name, size=0, value=float(out[1][0]))
+        _check_no_loss_at_zero(out[1], self.down_name)
         return out[0], out[1]
 
     def at(self, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

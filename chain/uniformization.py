@@ -30,6 +30,7 @@ import numpy as np
 from numba import njit
 
 from .errors import RateError
+from .rates import check_rate_arrays
 
 #: Λ = RATE_MARGIN · (largest total rate in the window).
 RATE_MARGIN = 1.02
@@ -44,21 +45,26 @@ _FM = {"contract", "reassoc", "arcp"}
 # compiled pieces
 # --------------------------------------------------------------------------------------
 @njit(cache=True, nogil=True)
-def _window_steps(birth, death, lo, hi, N, p, q, d):
-    """Fill the step probabilities of B on lo..hi into p, q, d; return Λ."""
+def _window_steps(birth, death, lo, hi, N, p, q, d, bs, ds):
+    """Fill the step probabilities of B on lo..hi into p, q, d; return Λ.
+
+    The rates are scaled: λ'_n = λ_0 + (λ_n − λ_0)·bs (the births, not the immigration
+    λ_0, scaled) and μ'_n = μ_n·ds; bs = ds = 1 gives the rates as they are.
+    """
     W = hi - lo + 1
+    iota = birth[0]
     top = 0.0
     for j in range(W):
         n = lo + j
-        lam = birth[n] if n < N else 0.0
-        s = lam + death[n]
+        lam = iota + (birth[n] - iota) * bs if n < N else 0.0
+        s = lam + death[n] * ds
         if s > top:
             top = s
     Lam = RATE_MARGIN * top if top > 0.0 else 1.0
     for j in range(W):
         n = lo + j
-        lam = birth[n] if n < N else 0.0
-        mu = death[n]
+        lam = iota + (birth[n] - iota) * bs if n < N else 0.0
+        mu = death[n] * ds
         p[j] = lam / Lam
         q[j] = mu / Lam
         d[j] = (Lam - lam - mu) / Lam
@@ -250,7 +256,7 @@ def _rows_kernel(birth, death, N, lo, hi, starts, xs, Ks, wts, rows, leaked):
     p = np.empty(W)
     q = np.empty(W)
     d = np.empty(W)
-    _window_steps(birth, death, lo, hi, N, p, q, d)
+    _window_steps(birth, death, lo, hi, N, p, q, d, 1.0, 1.0)
     nT = xs.shape[0]
     Kmax = 0
     for t in range(nT):
@@ -278,7 +284,7 @@ def _rows_kernel(birth, death, N, lo, hi, starts, xs, Ks, wts, rows, leaked):
 
 
 @njit(cache=True, nogil=True)
-def _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, Lams, Ks, rbs):
+def _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, g_bs, g_ds, Lams, Ks, rbs):
     G = g_lo.shape[0]
     maxW = 1
     for g in range(G):
@@ -289,7 +295,7 @@ def _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, Lams, Ks, rbs):
     q = np.empty(maxW)
     d = np.empty(maxW)
     for g in range(G):
-        Lam = _window_steps(birth, death, g_lo[g], g_hi[g], N, p, q, d)
+        Lam = _window_steps(birth, death, g_lo[g], g_hi[g], N, p, q, d, g_bs[g], g_ds[g])
         K, rb = _poisson_extent(Lam * g_dt[g], g_tail[g])
         Lams[g] = Lam
         Ks[g] = K
@@ -297,7 +303,7 @@ def _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, Lams, Ks, rbs):
 
 
 @njit(cache=True, nogil=True, fastmath=_FM)
-def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
+def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail, g_bs, g_ds,
                   e_ptr, e_end, e_mult, want_grad, linear,
                   out_prob, out_leak, out_leak_lo, out_leak_hi, out_drop, out_lam, out_steps,
                   g_off, out_gb, out_gd):
@@ -306,13 +312,14 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
     out_prob[e]: windowed P(start -> end_e); out_leak[g]: window leak bound, split into the
     mass that left below (out_leak_lo) and above (out_leak_hi); out_drop[g]: dropped Poisson
     mass; out_gb/out_gd[g_off[g] + j]: ∂ Σ_e mult_e log P_e (or, with ``linear``,
-    ∂ Σ_e mult_e P_e) / ∂ rate at size lo+j (log: only where P_e > 0).
+    ∂ Σ_e mult_e P_e) / ∂ (scaled) rate at size lo+j (log: only where P_e > 0). Group g's
+    rates are scaled by g_bs[g] (births) and g_ds[g] (deaths), see _window_steps.
     """
     G = g_start.shape[0]
     Lams = np.empty(G)
     Ks = np.empty(G, dtype=np.int64)
     rbs = np.empty(G)
-    _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, Lams, Ks, rbs)
+    _plan_groups(birth, death, N, g_lo, g_hi, g_dt, g_tail, g_bs, g_ds, Lams, Ks, rbs)
     maxW = 1
     maxK = 0
     maxKW = 0
@@ -339,7 +346,7 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail,
         lo = g_lo[g]
         hi = g_hi[g]
         W = hi - lo + 1
-        Lam = _window_steps(birth, death, lo, hi, N, p, q, d)
+        Lam = _window_steps(birth, death, lo, hi, N, p, q, d, g_bs[g], g_ds[g])
         K = Ks[g]
         x = Lam * g_dt[g]
         under = _poisson_weights(x, K, rbs[g], w, True)
@@ -448,7 +455,7 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
     maxKW = 0
     for s in range(S):
         for i in range(occ_ptr[s] + 1, occ_ptr[s + 1]):
-            Lam = _window_steps(birth, death, iv_lo[i], iv_hi[i], N, p, q, d)
+            Lam = _window_steps(birth, death, iv_lo[i], iv_hi[i], N, p, q, d, 1.0, 1.0)
             K, rb = _poisson_extent(Lam * iv_dt[i], iv_tail[i])
             Lams[i] = Lam
             Ks[i] = K
@@ -505,7 +512,7 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
             lo = iv_lo[i]
             hi = iv_hi[i]
             W = hi - lo + 1
-            _window_steps(birth, death, lo, hi, N, p, q, d)
+            _window_steps(birth, death, lo, hi, N, p, q, d, 1.0, 1.0)
             K = Ks[i]
             x = Lams[i] * iv_dt[i]
             under = _poisson_weights(x, K, rbs[i], w, True)
@@ -564,7 +571,7 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
             lo = iv_lo[i]
             hi = iv_hi[i]
             W = hi - lo + 1
-            Lam = _window_steps(birth, death, lo, hi, N, p, q, d)
+            Lam = _window_steps(birth, death, lo, hi, N, p, q, d, 1.0, 1.0)
             K = Ks[i]
             x = Lam * iv_dt[i]
             _poisson_weights(x, K, rbs[i], w, True)
@@ -606,24 +613,6 @@ def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
 # --------------------------------------------------------------------------------------
 # public interface
 # --------------------------------------------------------------------------------------
-def _check_rates(birth: np.ndarray, death: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
-    b = np.ascontiguousarray(birth, dtype=np.float64)
-    m = np.ascontiguousarray(death, dtype=np.float64)
-    if b.ndim != 1 or m.ndim != 1 or b.shape != m.shape or b.size < 1:
-        raise RateError(f"birth and death must be 1-D arrays of the same length N+1 ≥ 1, got shapes "
-                        f"{np.shape(birth)} and {np.shape(death)}", name="birth")
-    for name, arr in (("birth", b), ("death", m)):
-        bad = np.flatnonzero(~np.isfinite(arr) | (arr < 0))
-        if bad.size:
-            n = int(bad[0])
-            raise RateError(f"{name} rate at size {n} is {arr[n]!r}; rates must be finite and ≥ 0",
-                            name=name, size=n, value=float(arr[n]))
-    if m[0] != 0.0:
-        raise RateError(f"death rate at size 0 must be 0, got {m[0]!r}", name="death", size=0,
-                        value=float(m[0]))
-    return b, m, b.size - 1
-
-
 def _check_window(lo: int, hi: int | None, N: int) -> tuple[int, int]:
     hi = N if hi is None else int(hi)
     lo = int(lo)
@@ -683,7 +672,7 @@ def transition_rows(birth: np.ndarray, death: np.ndarray, starts, times, lo: int
         RateError: rates of different lengths, negative, not finite, death[0] ≠ 0, a bad
             window, a start outside the window, a negative or non-finite time, or tail ≤ 0.
     """
-    b, m, N = _check_rates(birth, death)
+    b, m, N = check_rate_arrays(birth, death, min_sizes=1)
     lo, hi = _check_window(lo, hi, N)
     st = np.atleast_1d(np.asarray(starts))
     if st.ndim != 1 or (st.size and (not np.all(np.isfinite(st.astype(float)))
@@ -701,7 +690,7 @@ def transition_rows(birth: np.ndarray, death: np.ndarray, starts, times, lo: int
     p = np.empty(W)
     q = np.empty(W)
     d = np.empty(W)
-    Lam = _window_steps(b, m, lo, hi, N, p, q, d)
+    Lam = _window_steps(b, m, lo, hi, N, p, q, d, 1.0, 1.0)
     xs = Lam * ts
     Ks = np.zeros(ts.size, dtype=np.int64)
     rbs = np.zeros(ts.size)
@@ -753,7 +742,8 @@ class PairsResult:
 
 def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, group_dt,
                              group_lo, group_hi, group_tail, end_ptr, end_size, end_weight,
-                             *, grad: bool = True, linear: bool = False) -> PairsResult:
+                             *, grad: bool = True, linear: bool = False,
+                             group_birth_scale=None, group_death_scale=None) -> PairsResult:
     """Windowed P(start -> end) for groups of pairs, and the adjoint gradient of Σ w log P.
 
     A group is one start size, one duration and one window; its ends share the group's
@@ -773,14 +763,20 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
         grad: compute gradients (one extra backward sweep per group, with the forward
             steps stored).
         linear: differentiate Σ w P instead of Σ w log P.
+        group_birth_scale, group_death_scale: per group, factors on the births (not the
+            immigration λ_0: λ'_n = λ_0 + (λ_n − λ_0)·s) and on the deaths (μ'_n = μ_n·s);
+            default 1. A year's environment or a covariate moves a group's rates this way.
+            The gradients are then with respect to the scaled rates.
 
     Returns:
         PairsResult.
 
     Raises:
-        RateError: bad rates, windows that do not contain their pairs, dt ≤ 0 or tail ≤ 0.
+        RateError: bad rates, windows that do not contain their pairs, dt ≤ 0 or tail ≤ 0,
+            scales that are not finite and > 0, or a birth scale ≠ 1 with births below the
+            immigration λ_0 (the scaled rate would be negative).
     """
-    b, m, N = _check_rates(birth, death)
+    b, m, N = check_rate_arrays(birth, death, min_sizes=1)
     gs = np.ascontiguousarray(group_start, dtype=np.int64)
     gdt = np.ascontiguousarray(group_dt, dtype=np.float64)
     glo = np.ascontiguousarray(group_lo, dtype=np.int64)
@@ -816,8 +812,17 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
     nflat = int(off[-1]) if grad else 0
     gb = np.zeros(nflat)
     gd = np.zeros(nflat)
+    gbs = np.ones(G) if group_birth_scale is None else np.ascontiguousarray(group_birth_scale, dtype=np.float64)
+    gds = np.ones(G) if group_death_scale is None else np.ascontiguousarray(group_death_scale, dtype=np.float64)
+    if gbs.shape != (G,) or gds.shape != (G,) or not (np.all(np.isfinite(gbs)) and np.all(gbs > 0)
+                                                       and np.all(np.isfinite(gds)) and np.all(gds > 0)):
+        raise RateError("group rate scales must be finite and > 0, one per group")
+    if np.any(gbs != 1.0) and np.any(b[:-1] < b[0]):
+        n = int(np.flatnonzero(b[:-1] < b[0])[0])
+        raise RateError(f"birth rate at size {n} is below the immigration rate λ_0 = {b[0]!r}: births "
+                        "cannot be scaled", name="birth", size=n, value=float(b[n]))
     if G:
-        _pairs_kernel(b, m, N, gs, glo, ghi, gdt, gtail, ep, ee, ew, bool(grad), bool(linear),
+        _pairs_kernel(b, m, N, gs, glo, ghi, gdt, gtail, gbs, gds, ep, ee, ew, bool(grad), bool(linear),
                       prob, leak, leak_lo, leak_hi, drop, lam, steps, off, gb, gd)
     return PairsResult(prob=prob, leaked=leak, leaked_low=leak_lo, leaked_high=leak_hi, dropped=drop,
                        rate=lam, steps=steps, grad_offsets=off, grad_birth=gb, grad_death=gd)
@@ -843,7 +848,7 @@ def weighted_transition_grad(birth: np.ndarray, death: np.ndarray, starts, ends,
     Raises:
         RateError: bad rates, window, sizes or weights.
     """
-    b, m, N = _check_rates(birth, death)
+    b, m, N = check_rate_arrays(birth, death, min_sizes=1)
     lo, hi = _check_window(lo, hi, N)
     st = np.atleast_1d(np.asarray(starts, dtype=np.int64))
     en = np.atleast_1d(np.asarray(ends, dtype=np.int64))
@@ -923,7 +928,7 @@ def hidden_forward_backward(birth: np.ndarray, death: np.ndarray, series_ptr, si
         RateError: bad rates or inconsistent arrays (windows not containing allowed sizes,
             non-positive dt).
     """
-    b, m, N = _check_rates(birth, death)
+    b, m, N = check_rate_arrays(birth, death, min_sizes=1)
     sp = np.ascontiguousarray(series_ptr, dtype=np.int64)
     alo = np.ascontiguousarray(size_lo, dtype=np.int64)
     ahi = np.ascontiguousarray(size_hi, dtype=np.int64)

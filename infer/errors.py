@@ -106,23 +106,6 @@ class ReplicateMismatchError(CountValueError):
     """Exact counts (no detection model) but replicate surveys at one time disagree."""
 
 
-class InvalidRatesError(InputError):
-    """Birth or death rates given to the likelihood are unusable.
-
-    Attributes:
-        name: "birth", "death" or "detection".
-        size: the first offending size, or None.
-        value: the offending value, or None.
-    """
-
-    def __init__(self, message: str, *, name: str | None = None, size: int | None = None,
-                 value: float | None = None) -> None:
-        self.name = name
-        self.size = size
-        self.value = value
-        super().__init__(message)
-
-
 class LikelihoodUnderflowError(InputError):
     """A transition that is possible has a probability too small for double precision
     (or too small to bound at the requested tolerance), even on the whole size range.

@@ -6,17 +6,19 @@ With λ_n = n·b(n) + ι and μ_n = n·d(n), a scenario maps the rates of every 
     μ'_n = death_factor · μ_n + harvest_rate · n + harvest_quota · [n ≥ 1]
 
 harvest_rate is a per-capita removal rate; harvest_quota a fixed number removed per time
-unit while any animal remains (a constant removal rate). Every scenario is applied to the
-same draws as the baseline, so differences are paired.
+unit while any animal remains (a constant removal rate). A scenario may also state future
+covariate values (``covariates``, e.g. {fenced = 0}), which replace the run's stated
+future values in its forecasts. Every scenario is applied to the same draws as the
+baseline, so differences are paired.
 """
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from typing import Any, Mapping
 
 import numpy as np
 
-from .errors import InputError
+from tallyfit.infer.errors import InputError
 
 _FIELDS = {"harvest_rate": 0.0, "harvest_quota": 0.0, "death_factor": 1.0, "birth_factor": 1.0,
            "added_immigration": 0.0}
@@ -34,6 +36,8 @@ class Scenario:
         birth_factor: multiplier on per-capita birth, >= 0.
         added_immigration: animals added per time unit (supplementation), >= 0.
         description: free text for the report.
+        covariates: future covariate values of this scenario ({name: value}), replacing
+            the run's stated future values for the names given.
     """
 
     name: str
@@ -43,10 +47,11 @@ class Scenario:
     birth_factor: float = 1.0
     added_immigration: float = 0.0
     description: str = ""
+    covariates: Mapping[str, float] = field(default_factory=dict)
 
     @property
     def is_baseline(self) -> bool:
-        return all(getattr(self, k) == v for k, v in _FIELDS.items())
+        return all(getattr(self, k) == v for k, v in _FIELDS.items()) and not self.covariates
 
     def apply(self, birth: np.ndarray, death: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Scenario rates from baseline rates (sizes on the last axis; size 0 must be included
@@ -68,7 +73,10 @@ class Scenario:
         return new_birth, new_death
 
     def as_dict(self) -> dict[str, Any]:
-        return asdict(self)
+        """Plain data (for run.toml, summary.json and derived.nc's scenarios attribute)."""
+        out = asdict(self)
+        out["covariates"] = dict(self.covariates)
+        return out
 
 
 BASELINE = Scenario("baseline", description="fitted rates, no change")
@@ -104,9 +112,17 @@ def scenarios_from_table(table: Mapping[str, Any], *, source: str = "run.toml") 
             if key == "description":
                 kwargs[key] = str(value)
                 continue
+            if key == "covariates":
+                if not isinstance(value, Mapping) or not all(
+                        isinstance(v, (int, float)) and not isinstance(v, bool) and np.isfinite(v)
+                        for v in value.values()):
+                    raise InputError("'covariates' must be a table of finite numbers", source=source,
+                                     column=f"{where}.covariates", hint="e.g. covariates = {fenced = 0}")
+                kwargs[key] = {str(k): float(v) for k, v in value.items()}
+                continue
             if key not in _FIELDS:
                 raise InputError(f"unknown setting '{key}'", source=source, column=f"{where}.{key}",
-                                 hint="allowed: " + ", ".join(list(_FIELDS) + ["description"]))
+                                 hint="allowed: " + ", ".join(list(_FIELDS) + ["description", "covariates"]))
             if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value):
                 raise InputError(f"'{key}' must be a finite number, got {value!r}", source=source,
                                  column=f"{where}.{key}")

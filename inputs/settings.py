@@ -4,7 +4,12 @@ A settings file has the tables
 
     [fit]       rates, immigration, chains, draws, tune, seed, max_size, detection, pooling,
                 target_accept (NUTS; default 0.95, high because birth and death rates are
-                strongly correlated in the posterior and lower values give divergences)
+                strongly correlated in the posterior and lower values give divergences),
+                varying_years ("none", "births" or "births_and_deaths": good and bad years
+                move every animal's births, or births and deaths, together)
+    [covariates]  file (CSV: time, [site], one column per covariate), births and deaths
+                (lists of column names acting on each), future (a table: the value of
+                every covariate used in forecasts)
     [priors.NAME]  dist and its parameters (see the family's describe())
     [derive]    horizons, thresholds, generation_time, credible_level, max_draws
     [scenario.NAME]  harvest_rate, harvest_quota, death_factor, birth_factor, added_immigration
@@ -24,7 +29,10 @@ from tallyfit.infer.scenarios import Scenario, scenarios_from_table
 
 _FIT_KEYS = {"rates": str, "immigration": bool, "chains": int, "draws": int, "tune": int,
              "seed": int, "max_size": int, "detection": (float, int, str), "pooling": bool,
-             "target_accept": float}
+             "target_accept": float, "varying_years": str}
+_COVARIATE_KEYS = {"file": str, "births": list, "deaths": list, "future": dict}
+#: Values of [fit] varying_years.
+VARYING_YEARS = ("none", "births", "births_and_deaths")
 _DERIVE_KEYS = {"horizons": list, "thresholds": list, "generation_time": (float, int),
                 "credible_level": float, "max_draws": int}
 
@@ -55,6 +63,11 @@ class RunSettings:
     max_draws: int | None = None
     priors: dict[str, Any] = field(default_factory=dict)
     scenarios: tuple[Scenario, ...] = ()
+    varying_years: str = "none"
+    covariates_file: str | None = None
+    birth_covariates: tuple[str, ...] = ()
+    death_covariates: tuple[str, ...] = ()
+    future_covariates: dict[str, float] = field(default_factory=dict)
 
     def with_options(self, **options: Any) -> "RunSettings":
         """A copy with the given options replaced (None values are ignored)."""
@@ -69,6 +82,20 @@ class RunSettings:
             return InputError(msg, source=source, column=key, hint=hint)
         if self.chains < 1:
             raise bad("chains", f"chains must be >= 1, got {self.chains}")
+        if self.varying_years not in VARYING_YEARS:
+            raise bad("varying_years", f"varying_years must be one of {', '.join(VARYING_YEARS)}, got "
+                      f"{self.varying_years!r}")
+        used = (*self.birth_covariates, *self.death_covariates)
+        if used and self.covariates_file is None:
+            raise bad("covariates.file", "covariates are named but no covariate file is given",
+                      hint="add file = \"covariates.csv\" to [covariates], or --covariates FILE")
+        missing = [c for c in dict.fromkeys(used) if c not in self.future_covariates]
+        if missing:
+            raise bad("covariates.future", f"no future value for {', '.join(missing)}: forecasts need one",
+                      hint="write [covariates.future] with a value for each covariate used")
+        if self.covariates_file is not None and not used:
+            raise bad("covariates", "a covariate file is given but no covariate acts on births or deaths",
+                      hint="list columns in births = [...] or deaths = [...]")
         if self.draws < 10 or self.tune < 0:
             raise bad("draws", f"draws must be >= 10 and tune >= 0, got draws={self.draws}, tune={self.tune}")
         if not 0.5 <= self.target_accept < 1:
@@ -89,10 +116,10 @@ class RunSettings:
             raise bad("credible_level", f"credible_level must be between 0 and 1, got {self.credible_level}")
 
     def as_dict(self) -> dict[str, Any]:
-        """Plain data for run.toml (None written as the string "none")."""
+        """Plain data for summary.json and run.toml (None stays None; run.toml leaves it out)."""
         d = asdict(self)
         d["scenarios"] = [s.as_dict() for s in self.scenarios]
-        return {k: ("none" if v is None else v) for k, v in d.items()}
+        return d
 
 
 def _typed(table: Mapping[str, Any], spec: Mapping[str, Any], section: str, source: str) -> dict[str, Any]:
@@ -109,6 +136,29 @@ def _typed(table: Mapping[str, Any], spec: Mapping[str, Any], section: str, sour
             raise InputError(f"'{key}' has the wrong type ({type(value).__name__})", source=source,
                              column=f"{section}.{key}")
         out[key] = value
+    return out
+
+
+def _covariate_settings(table: Mapping[str, Any], source: str, folder: Path) -> dict[str, Any]:
+    """[covariates] as RunSettings fields (the file relative to the settings file's folder)."""
+    raw = _typed(table, _COVARIATE_KEYS, "covariates", source)
+    out: dict[str, Any] = {}
+    if "file" in raw:
+        out["covariates_file"] = str((folder / raw["file"]).resolve())
+    for key, field_name in (("births", "birth_covariates"), ("deaths", "death_covariates")):
+        if key in raw:
+            if not all(isinstance(v, str) and v for v in raw[key]):
+                raise InputError(f"'{key}' must be a list of covariate column names", source=source,
+                                 column=f"covariates.{key}")
+            out[field_name] = tuple(raw[key])
+    if "future" in raw:
+        future = {}
+        for k, v in raw["future"].items():
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                raise InputError(f"the future value of '{k}' must be a number", source=source,
+                                 column=f"covariates.future.{k}")
+            future[str(k)] = float(v)
+        out["future_covariates"] = future
     return out
 
 
@@ -135,12 +185,12 @@ def load_settings(path: str | Path | None, base: RunSettings | None = None) -> R
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"not valid TOML: {exc}", source=source,
                          hint="fix the syntax at the line shown") from None
-    allowed = {"fit", "derive", "priors", "scenario"}
+    allowed = {"fit", "derive", "priors", "scenario", "covariates"}
     for key in doc:
         if key not in allowed:
             raise InputError(f"unknown table [{key}]", source=source, column=key,
                              hint="allowed tables: " + ", ".join(sorted(allowed)))
-    for section in ("fit", "derive", "priors"):
+    for section in ("fit", "derive", "priors", "covariates"):
         if section in doc and not isinstance(doc[section], dict):
             raise InputError(f"'{section}' must be a table", source=source, column=section)
     fit = _typed(doc.get("fit", {}), _FIT_KEYS, "fit", source)
@@ -165,7 +215,8 @@ def load_settings(path: str | Path | None, base: RunSettings | None = None) -> R
         if not isinstance(prior, dict):
             raise InputError(f"prior for '{name}' must be a table", source=source, column=f"priors.{name}",
                              hint=f"write [priors.{name}] then dist = \"lognormal\", mu = 0.0, sigma = 1.0")
-    out = replace(settings, **fit, **derive, priors=priors or settings.priors,
+    cov = _covariate_settings(doc.get("covariates", {}), source, Path(path).parent)
+    out = replace(settings, **fit, **derive, **cov, priors=priors or settings.priors,
                   scenarios=scenarios or settings.scenarios)
     out.validate(source)
     return out

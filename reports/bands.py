@@ -7,14 +7,12 @@ the median and an equal-tailed interval (90% unless the run says otherwise), ove
 from __future__ import annotations
 
 import warnings
-from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 import xarray as xr
 
-__all__ = ["Band", "band", "credible_level", "SAMPLE_DIMS"]
+__all__ = ["Band", "band", "SAMPLE_DIMS"]
 
 SAMPLE_DIMS = ("chain", "draw")
 
@@ -66,23 +64,3 @@ def band(da: xr.DataArray, level: float = 0.9, dims: tuple[str, ...] = SAMPLE_DI
     return Band(mean=mean, lo=q.isel(quantile=0, drop=True), median=q.isel(quantile=1, drop=True),
                 hi=q.isel(quantile=2, drop=True), n=n, level=level)
 
-
-def credible_level(summary: Mapping[str, Any], default: float = 0.9) -> float:
-    """The credible level the run used (summary.json's derived.credible_level or settings), else ``default``.
-
-    Args:
-        summary: summary.json as a dict.
-        default: level to use when the run records none.
-
-    Returns:
-        float in (0, 1).
-    """
-    for getter in (lambda s: s["derived"]["credible_level"], lambda s: s["settings"]["credible_level"],
-                   lambda s: s["settings"]["derive"]["credible_level"]):
-        try:
-            v = float(getter(summary))
-        except (KeyError, TypeError, ValueError):
-            continue
-        if 0 < v < 1:
-            return v
-    return default

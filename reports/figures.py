@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import io
 import math
-import warnings
 from collections.abc import Mapping, Sequence
 from contextlib import contextmanager
 from typing import Any, Iterator
@@ -23,13 +22,12 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter
 
-from .bands import SAMPLE_DIMS, Band, band
-from .checks import LooOutcome
+from .bands import Band, band
 from .predictive import PredictiveBands
 
 __all__ = ["figure_png", "predictive_figure", "rates_figure", "distributions_figure", "extinction_figure",
-           "categories_figure", "scenario_figure", "trace_rank_figure", "prior_posterior_figure",
-           "pareto_k_figure", "PROBABILITY_FLOOR"]
+           "categories_figure", "scenario_figure", "style", "new_figure", "plain_text", "grid_shape", "PROBABILITY_FLOOR", "SERIES", "MAIN",
+           "DEATH"]
 
 #: Smallest probability drawn on a logarithmic axis; smaller values sit on the bottom edge.
 PROBABILITY_FLOOR = 1e-6
@@ -54,12 +52,13 @@ _STYLE = {
 
 
 @contextmanager
-def _style() -> Iterator[None]:
+def style() -> Iterator[None]:
+    """The report's matplotlib style, for the figures drawn inside the block."""
     with matplotlib.rc_context(_STYLE):
         yield
 
 
-def _figure(width: float, height: float, nrow: int = 1, ncol: int = 1, *, left: float = 0.75,
+def new_figure(width: float, height: float, nrow: int = 1, ncol: int = 1, *, left: float = 0.75,
             right: float = 0.2, top: float = 0.4, bottom: float = 0.55, wgap: float = 0.75,
             hgap: float = 0.75) -> Figure:
     """A figure with fixed margins and gaps in inches (cheaper to draw than a layout engine)."""
@@ -83,17 +82,18 @@ def figure_png(fig: Figure, dpi: int = 110) -> bytes:
         the PNG file's bytes.
     """
     buf = io.BytesIO()
-    with _style():
+    with style():
         fig.savefig(buf, format="png", dpi=dpi)
     return buf.getvalue()
 
 
-def _plain(text: Any) -> str:
+def plain_text(text: Any) -> str:
     """Text from a file, safe for matplotlib (a "$" would otherwise start mathematical text)."""
     return str(text).replace("$", r"\$")
 
 
-def _grid(n: int, ncols: int = 2) -> tuple[int, int]:
+def grid_shape(n: int, ncols: int = 2) -> tuple[int, int]:
+    """(rows, columns) of a grid of n panels at most ``ncols`` wide."""
     ncols = max(1, min(ncols, n))
     return math.ceil(n / ncols), ncols
 
@@ -128,10 +128,10 @@ def predictive_figure(counts: pd.DataFrame | None, bands: PredictiveBands, sites
     Returns:
         Figure.
     """
-    with _style():
-        nrow, ncol = _grid(len(sites))
+    with style():
+        nrow, ncol = grid_shape(len(sites))
         many = len(sites) > 1
-        fig = _figure(4.2 * ncol if many else 7.5, 2.8 * nrow + (0.35 if many else 0), nrow, ncol,
+        fig = new_figure(4.2 * ncol if many else 7.5, 2.8 * nrow + (0.35 if many else 0), nrow, ncol,
                       bottom=0.9 if many else 0.55)
         for i, site in enumerate(sites):
             ax = fig.add_subplot(nrow, ncol, i + 1)
@@ -151,7 +151,7 @@ def predictive_figure(counts: pd.DataFrame | None, bands: PredictiveBands, sites
                 for k, t_miss in enumerate(miss):
                     ax.axvline(t_miss, color=MUTED, linestyle=":", linewidth=0.8,
                                label="no survey" if k == 0 else None)
-            ax.set_title(_plain(site) if len(sites) > 1 else "Counts and posterior predictive bands")
+            ax.set_title(plain_text(site) if len(sites) > 1 else "Counts and posterior predictive bands")
             ax.set_xlabel("time")
             ax.set_ylabel("count")
             ax.set_ylim(bottom=0)
@@ -185,8 +185,8 @@ def rates_figure(derived: xr.Dataset, scenario: str, level: float = 0.9,
     x = d["size"].values.astype(float)
     bb, bd = band(d["birth_per_capita"], level), band(d["death_per_capita"], level)
     net = band(d["birth_per_capita"] - d["death_per_capita"], level)
-    with _style():
-        fig = _figure(8.2, 3.3, 1, 2, wgap=0.85)
+    with style():
+        fig = new_figure(8.2, 3.3, 1, 2, wgap=0.85)
         ax1, ax2 = fig.add_subplot(1, 2, 1), fig.add_subplot(1, 2, 2)
         for ax in (ax1, ax2):
             if observed is not None:
@@ -240,8 +240,8 @@ def distributions_figure(derived: xr.Dataset, scenario: str, level: float = 0.9)
     qs = band(d["quasi_pmf"], level)
     top = _pmf_top(qs.hi, *( [st.hi] if st is not None else []), cap=cap)
     x = derived["size"].values[: top + 1]
-    with _style():
-        fig = _figure(8.2, 3.3, 1, 2, wgap=0.85)
+    with style():
+        fig = new_figure(8.2, 3.3, 1, 2, wgap=0.85)
         ax1, ax2 = fig.add_subplot(1, 2, 1), fig.add_subplot(1, 2, 2)
         if st is not None:
             _band_fill(ax1, x, _slice(st, top), MAIN, "posterior mean", level)
@@ -249,7 +249,7 @@ def distributions_figure(derived: xr.Dataset, scenario: str, level: float = 0.9)
         else:
             ax1.text(0.5, 0.5, "no draw has a stationary distribution\n(the population is not regulated,\n"
                      "or size 0 is absorbing)", transform=ax1.transAxes, ha="center", va="center", color=MUTED)
-        ax1.set_title(f"Stationary, P(exists) = {_percent_plain(p_exists)}")
+        ax1.set_title(f"Stationary, P(exists) = {_percentplain_text(p_exists)}")
         ax1.set_xlabel("population size")
         ax1.set_ylabel("probability")
         _band_fill(ax2, x, _slice(qs, top), ACCENT, "posterior mean", level)
@@ -263,7 +263,7 @@ def distributions_figure(derived: xr.Dataset, scenario: str, level: float = 0.9)
         return fig
 
 
-def _percent_plain(p: float) -> str:
+def _percentplain_text(p: float) -> str:
     if not np.isfinite(p):
         return "—"
     return f"{100 * p:.0f}%" if p in (0.0, 1.0) or 0.01 <= p <= 0.99 else f"{100 * p:.2g}%"
@@ -318,9 +318,9 @@ def extinction_figure(draws: xr.DataArray, horizons: Mapping[str, float], level:
     b_all = band(draws, level)
     log = not bool((b_all.hi >= 0.05).any())
     x = draws["horizon"].values.astype(float)
-    with _style():
-        nrow, ncol = _grid(len(keys))
-        fig = _figure(8.2 if ncol == 1 else 3.6 * ncol + 1.9, 3.4 if nrow == 1 else 2.9 * nrow, nrow, ncol,
+    with style():
+        nrow, ncol = grid_shape(len(keys))
+        fig = new_figure(8.2 if ncol == 1 else 3.6 * ncol + 1.9, 3.4 if nrow == 1 else 2.9 * nrow, nrow, ncol,
                       right=2.0, left=0.85)
         for i, key in enumerate(keys):
             ax = fig.add_subplot(nrow, ncol, i + 1)
@@ -342,7 +342,7 @@ def extinction_figure(draws: xr.DataArray, horizons: Mapping[str, float], level:
             ax.set_xlim(0, max(x.max(), max(horizons.values())) * 1.12)
             ax.set_xlabel("horizon (years for criterion E)")
             ax.set_ylabel("probability")
-            ax.set_title(_plain(key) if key is not None else _plain(title))
+            ax.set_title(plain_text(key) if key is not None else plain_text(title))
             if i == ncol - 1 or len(keys) == 1:
                 ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0))
         return fig
@@ -367,11 +367,11 @@ def categories_figure(table: pd.DataFrame) -> Figure:
     Returns:
         Figure.
     """
-    with _style():
-        fig = _figure(7.5, 1.05 + 0.42 * len(table), left=1.1, top=0.5, right=0.4)
+    with style():
+        fig = new_figure(7.5, 1.05 + 0.42 * len(table), left=1.1, top=0.5, right=0.4)
         ax = fig.add_subplot(1, 1, 1)
         names = list(table.index)[::-1]
-        ticks = [_plain(n) for n in names]
+        ticks = [plain_text(n) for n in names]
         left = np.zeros(len(names))
         for j, cat in enumerate(table.columns):
             vals = table.loc[names, cat].to_numpy(dtype=float)
@@ -410,8 +410,8 @@ def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
     b_all = band(ext, level)
     log = not bool((b_all.hi >= 0.05).any())
     what = "extinction" if int(k) == 0 else f"falling to {int(k)} or fewer"
-    with _style():
-        fig = _figure(8.2, 3.4, 1, 2, left=0.85, wgap=1.1)
+    with style():
+        fig = new_figure(8.2, 3.4, 1, 2, left=0.85, wgap=1.1)
         ax1, ax2 = fig.add_subplot(1, 2, 1), fig.add_subplot(1, 2, 2)
         base = ext.sel(scenario=scen[0])
         width = 0.8 * (np.min(np.diff(x)) if x.size > 1 else 1.0) / max(1, len(scen) - 1)
@@ -422,7 +422,7 @@ def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
             if log:
                 lo, hi, mean = (np.clip(v, PROBABILITY_FLOOR, 1) for v in (lo, hi, mean))
             ax1.fill_between(x, lo, hi, color=colour, alpha=0.16, linewidth=0)
-            ax1.plot(x, mean, color=colour, marker="o", markersize=3, linewidth=1.5, label=_plain(sc))
+            ax1.plot(x, mean, color=colour, marker="o", markersize=3, linewidth=1.5, label=plain_text(sc))
             if i == 0:
                 continue
             diff = band(ext.sel(scenario=sc) - base, level)
@@ -431,7 +431,7 @@ def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
             # interval and mean drawn separately: with a heavy tail the mean can lie outside the interval
             ax2.vlines(x + off, np.asarray(diff.lo.values, dtype=float), np.asarray(diff.hi.values, dtype=float),
                        color=colour, linewidth=2.2, alpha=0.55)
-            ax2.plot(x + off, m, "o", color=colour, markersize=4.5, label=_plain(sc))
+            ax2.plot(x + off, m, "o", color=colour, markersize=4.5, label=plain_text(sc))
         if log:
             ax1.set_yscale("log")
             ax1.set_ylim(PROBABILITY_FLOOR * 0.8, 1)
@@ -442,139 +442,10 @@ def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
         ax1.set_xlabel("horizon")
         ax1.legend(loc="best")
         ax2.axhline(0, color=INK, linewidth=0.8)
-        ax2.set_title(f"Change from {_plain(scen[0])} (paired)")
+        ax2.set_title(f"Change from {plain_text(scen[0])} (paired)")
         ax2.set_xlabel("horizon")
         ax2.set_ylabel("difference in probability")
         ax2.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{100 * v:+.3g} pts" if v else "0"))
         if len(scen) > 1:
             ax2.legend(loc="best")
-        return fig
-
-
-# --------------------------------------------------------------------------- diagnostics
-def trace_rank_figure(idata: Any, var_names: Sequence[str]) -> Figure:
-    """Trace (left, density per chain) and rank bars per chain (right) of each variable (ArviZ plot_trace, kind="rank_bars").
-
-    Args:
-        idata: InferenceData.
-        var_names: posterior variables to draw (vector variables share a panel).
-
-    Returns:
-        Figure.
-
-    Raises:
-        ValueError: no variable in ``var_names`` is in the posterior.
-    """
-    import arviz as az
-
-    names = [v for v in var_names if v in idata.posterior]
-    if not names:
-        raise ValueError("none of the variables to draw is in the posterior: " + ", ".join(var_names))
-    with _style():
-        fig = _figure(8.2, 1.75 * len(names) + 0.3, len(names), 2, left=0.3, top=0.35, bottom=0.5,
-                      wgap=0.75, hgap=0.8)
-        axes = np.array([[fig.add_subplot(len(names), 2, 2 * i + j + 1) for j in range(2)] for i in range(len(names))])
-        with warnings.catch_warnings():  # ArviZ's own use of a matplotlib API it deprecates
-            warnings.simplefilter("ignore", matplotlib.MatplotlibDeprecationWarning)
-            az.plot_trace(idata, var_names=names, kind="rank_bars", compact=True, axes=axes,
-                          chain_prop={"color": list(SERIES)}, show=False)
-        for ax in axes.ravel():
-            ax.title.set_fontsize(9)
-            ax.title.set_fontweight("normal")
-        return fig
-
-
-def _flat_draws(group: xr.Dataset, name: str) -> list[tuple[str, np.ndarray]]:
-    da = group[name]
-    extra = [d for d in da.dims if d not in SAMPLE_DIMS]
-    if not extra:
-        return [(name, np.asarray(da.values, dtype=float).ravel())]
-    st = da.stack(_element=extra).transpose(*[d for d in SAMPLE_DIMS if d in da.dims], "_element")
-    vals = np.asarray(st.values, dtype=float)
-    vals = vals.reshape(-1, vals.shape[-1])
-    labels = [f"{name}[{', '.join(str(v) for v in (idx if isinstance(idx, tuple) else (idx,)))}]"
-              for idx in st["_element"].values]
-    return [(lab, vals[:, i]) for i, lab in enumerate(labels)]
-
-
-def prior_posterior_figure(idata: Any, var_names: Sequence[str], max_panels: int = 16) -> Figure:
-    """Prior and posterior densities of each parameter (histograms; positive parameters on a log axis when wide).
-
-    Args:
-        idata: InferenceData with posterior and prior groups.
-        var_names: variables to draw (vector variables: one panel per element).
-        max_panels: most panels drawn.
-
-    Returns:
-        Figure.
-
-    Raises:
-        ValueError: no prior group, or no variable in both groups.
-    """
-    if "prior" not in idata.groups():
-        raise ValueError("posterior.nc has no prior group")
-    pairs = []
-    for name in var_names:
-        if name in idata.posterior and name in idata.prior:
-            post = dict(_flat_draws(idata.posterior, name))
-            for lab, q in _flat_draws(idata.prior, name):
-                if lab in post:
-                    pairs.append((lab, q, post[lab]))
-    if not pairs:
-        raise ValueError("no parameter is in both the prior and the posterior groups")
-    pairs = pairs[:max_panels]
-    with _style():
-        nrow, ncol = _grid(len(pairs), 3)
-        fig = _figure(8.2, 2.1 * nrow + 0.3, nrow, ncol, left=0.2, top=0.35, bottom=0.45, wgap=0.3, hgap=0.7)
-        for i, (lab, prior, post) in enumerate(pairs):
-            ax = fig.add_subplot(nrow, ncol, i + 1)
-            prior, post = prior[np.isfinite(prior)], post[np.isfinite(post)]
-            both = np.concatenate([prior, post])
-            lo, hi = np.quantile(both, [0.005, 0.995])
-            logx = bool(both.size and np.all(both > 0) and hi / max(lo, 1e-300) > 20)
-            if logx:
-                bins = np.geomspace(lo, hi, 40)
-                ax.set_xscale("log")
-            else:
-                bins = np.linspace(lo, hi, 40) if hi > lo else 20
-            ax.hist(prior, bins=bins, density=True, histtype="stepfilled", color="#d4d4d4", label="prior")
-            ax.hist(post, bins=bins, density=True, histtype="stepfilled", color=MAIN, alpha=0.75, label="posterior")
-            ax.set_title(_plain(lab), fontsize=8.5)
-            ax.set_yticks([])
-            ax.grid(False)
-            if i == 0:
-                ax.legend(loc="upper right")
-        return fig
-
-
-def pareto_k_figure(loo: LooOutcome, threshold: float = 0.7) -> Figure:
-    """Pareto k of each observation's PSIS-LOO estimate, with the threshold line.
-
-    Args:
-        loo: the LOO outcome (must hold pareto_k values).
-        threshold: k above this is flagged (Vehtari, Gelman & Gabry 2017).
-
-    Returns:
-        Figure.
-
-    Raises:
-        ValueError: no Pareto k values.
-    """
-    k = np.asarray(loo.pareto_k, dtype=float)
-    if k.size == 0:
-        raise ValueError("no Pareto k values to draw" + (f" ({loo.error})" if loo.error else ""))
-    with _style():
-        fig = _figure(7.5, 2.6)
-        ax = fig.add_subplot(1, 1, 1)
-        bad = k > threshold
-        idx = np.arange(k.size)
-        ax.plot(idx[~bad], k[~bad], "o", color=MAIN, markersize=3.5, label="k")
-        if bad.any():
-            ax.plot(idx[bad], k[bad], "X", color=DEATH, markersize=6, label=f"k > {threshold:g}")
-        ax.axhline(threshold, color=DEATH, linestyle="--", linewidth=0.9, label=f"limit {threshold:g}")
-        ax.set_xlabel("observation (transition between consecutive surveys)")
-        ax.set_ylabel("Pareto k")
-        ax.set_title("PSIS-LOO reliability per observation")
-        ax.set_ylim(min(-0.1, float(np.nanmin(k)) - 0.05), max(1.0, float(np.nanmax(k)) + 0.1))
-        ax.legend(loc="upper right")
         return fig

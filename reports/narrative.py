@@ -12,28 +12,23 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from tallyfit.runfolder.schema import CAUTION
+
 from .bands import band
 from .html import format_interval, format_number, format_probability
 
-__all__ = ["CAUTION", "caution_text", "trend_lines", "long_run_line", "extinction_line", "category_line"]
+__all__ = ["caution_text", "trend_lines", "long_run_line", "extinction_line", "category_line"]
 
-#: The caution shown on every report (summary.json's own caution text is used when it has one).
-CAUTION = ("Results are model-based: they depend on the counts supplied and on the assumptions shown "
-           "(rate family, priors, observation model, size cap). Listing, harvest and management "
-           "decisions should follow the relevant authority's guidelines (for Red List assessments, "
-           "the IUCN Red List Categories and Criteria and its guidelines) and qualified review.")
-
-
-def caution_text(summary: Mapping[str, Any]) -> str:
-    """The caution to show: summary.json's ``caution`` when it is non-empty text, else CAUTION.
+def caution_text(summary: Mapping[str, Any] | None) -> str:
+    """The caution to show: summary.json's ``caution`` when it is non-empty text, else the schema's.
 
     Args:
-        summary: summary.json as a dict.
+        summary: summary.json as read, or None.
 
     Returns:
         str.
     """
-    text = summary.get("caution") if isinstance(summary, Mapping) else None
+    text = summary["caution"] if summary is not None else ""
     return text.strip() if isinstance(text, str) and text.strip() else CAUTION
 
 

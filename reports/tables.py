@@ -6,8 +6,6 @@ are paired: computed draw by draw on the same posterior draws, then summarised.
 """
 from __future__ import annotations
 
-import ast
-import re
 from collections.abc import Mapping
 from typing import Any
 
@@ -17,62 +15,21 @@ import xarray as xr
 
 from .bands import SAMPLE_DIMS, band
 
-__all__ = ["category_names", "iucn_horizons", "category_table", "extinction_table", "trend_table",
-           "scenario_settings", "scenario_differences", "parameter_table", "prior_posterior_table",
+__all__ = ["category_table", "extinction_table", "trend_table",
+           "scenario_settings", "scenario_differences", "prior_posterior_table",
            "site_data_table", "flatten_settings"]
 
-_DEFAULT_CATEGORIES = ("below VU", "VU", "EN", "CR")
 
-
-def category_names(derived: xr.Dataset) -> list[str]:
-    """Names of the criterion E category codes, read from derived.nc's ``iucn_category`` attrs.
-
-    Args:
-        derived: the push-forward Dataset.
-
-    Returns:
-        list indexed by code (default "below VU", "VU", "EN", "CR" when attrs are missing).
-    """
-    codes = str(derived["iucn_category"].attrs.get("codes", "")) if "iucn_category" in derived else ""
-    found = dict((int(k), v.strip()) for k, v in re.findall(r"(\d+)\s*=\s*([^,]+)", codes))
-    if not found:
-        return list(_DEFAULT_CATEGORIES)
-    return [found.get(i, f"code {i}") for i in range(max(found) + 1)]
-
-
-def iucn_horizons(derived: xr.Dataset) -> dict[str, float]:
-    """Criterion E horizons (CR, EN, VU) in years, from derived.nc's ``iucn_category`` attrs.
-
-    IUCN (2012) Red List Categories and Criteria v3.1, criterion E: CR 50% within
-    max(10 y, 3 generations), EN 20% within max(20 y, 5 generations), both at most 100 y,
-    VU 10% within 100 y. Without attrs the shortest horizons (10, 20, 100) are returned.
-
-    Args:
-        derived: the push-forward Dataset.
-
-    Returns:
-        {"CR": years, "EN": years, "VU": years}.
-    """
-    text = str(derived["iucn_category"].attrs.get("horizons_years", "")) if "iucn_category" in derived else ""
-    out = {"CR": 10.0, "EN": 20.0, "VU": 100.0}
-    for k, v in re.findall(r"(CR|EN|VU)\s*=\s*([0-9.eE+-]+)", text):
-        try:
-            out[k] = float(v)
-        except ValueError:
-            pass
-    return out
-
-
-def category_table(derived: xr.Dataset) -> pd.DataFrame:
+def category_table(derived: xr.Dataset, names: list[str]) -> pd.DataFrame:
     """Posterior probability of each criterion E category, per scenario.
 
     Args:
         derived: the push-forward Dataset.
+        names: the category names in code order (``RunFolder.categories``).
 
     Returns:
         DataFrame indexed by scenario, one column per category (fractions summing to 1).
     """
-    names = category_names(derived)
     rows = {}
     for sc in derived["scenario"].values:
         code = np.asarray(derived["iucn_category"].sel(scenario=sc).values).ravel()
@@ -169,31 +126,24 @@ _SETTING_WORDS = {"harvest_rate": "per-capita removal rate", "harvest_quota": "a
                   "added_immigration": "animals added per time unit"}
 
 
-def scenario_settings(derived: xr.Dataset) -> dict[str, str]:
-    """What each scenario changes, in words, from derived.nc's ``scenarios`` attribute.
+def scenario_settings(scenarios: list[Mapping[str, Any]]) -> dict[str, str]:
+    """What each scenario changes, in words.
 
     Args:
-        derived: the push-forward Dataset.
+        scenarios: one dict per scenario (``RunFolder.scenario_settings``).
 
     Returns:
-        {scenario name: description} ("" for a scenario the attribute does not describe).
+        {scenario name: description}.
     """
-    out = {str(s): "" for s in derived["scenario"].values}
-    text = derived.attrs.get("scenarios")
-    try:
-        items = ast.literal_eval(str(text)) if text is not None else []
-    except (ValueError, SyntaxError):
-        return out
-    for item in items if isinstance(items, list) else []:
-        if not isinstance(item, Mapping) or "name" not in item:
-            continue
+    out = {}
+    for item in scenarios:
         parts = []
         for key, neutral in _NEUTRAL.items():
-            v = item.get(key, neutral)
-            if isinstance(v, (int, float)) and v != neutral:
+            v = item[key]
+            if v != neutral:
                 word = _SETTING_WORDS[key]
                 parts.append(f"{word}{v:g}" if word.endswith("× ") else f"{word} {v:g}")
-        desc = str(item.get("description") or "").strip()
+        desc = str(item["description"]).strip()
         if not parts:
             out[str(item["name"])] = desc or "no change to the fitted rates"
         else:
@@ -246,39 +196,6 @@ def scenario_differences(derived: xr.Dataset, level: float = 0.9) -> pd.DataFram
                      float("nan")))
     return pd.DataFrame(rows, columns=["scenario", "quantity", "baseline", "value", "diff_mean", "diff_lo",
                                        "diff_hi", "p_higher"])
-
-
-def parameter_table(summary: Mapping[str, Any], posterior: xr.Dataset, level: float = 0.9) -> pd.DataFrame:
-    """Posterior summaries of the parameters: summary.json's ``parameters`` when present, else computed.
-
-    Args:
-        summary: summary.json as a dict.
-        posterior: the posterior group (used when summary.json has no parameters).
-        level: credible level when computing.
-
-    Returns:
-        DataFrame indexed by parameter with columns mean, sd, lo, median, hi (and r_hat,
-        ess_bulk, ess_tail when summary.json gives them).
-    """
-    params = summary.get("parameters") if isinstance(summary, Mapping) else None
-    if isinstance(params, Mapping) and params:
-        rows = {}
-        for name, s in params.items():
-            if not isinstance(s, Mapping):
-                continue
-            rows[str(name)] = {"mean": s.get("mean"), "sd": s.get("sd"), "lo": s.get("q05"),
-                               "median": s.get("q50"), "hi": s.get("q95"), "r_hat": s.get("r_hat"),
-                               "ess_bulk": s.get("ess_bulk"), "ess_tail": s.get("ess_tail")}
-        return pd.DataFrame.from_dict(rows, orient="index").apply(pd.to_numeric, errors="coerce")
-    rows = {}
-    for name in posterior.data_vars:
-        da = posterior[name]
-        if any(d not in SAMPLE_DIMS for d in da.dims):
-            continue
-        b = band(da, level)
-        rows[str(name)] = {"mean": float(b.mean), "sd": float(da.std()), "lo": float(b.lo),
-                           "median": float(b.median), "hi": float(b.hi)}
-    return pd.DataFrame.from_dict(rows, orient="index")
 
 
 def prior_posterior_table(idata: Any, level: float = 0.9) -> pd.DataFrame:

@@ -19,7 +19,7 @@ __all__ = ["BirthDeathChain", "StepChain", "load_counts", "CountData", "log_like
 
 _LAZY = {
     "BirthDeathChain": "tallyfit.chain", "StepChain": "tallyfit.chain",
-    "load_counts": "tallyfit.infer.data", "CountData": "tallyfit.infer.data",
+    "load_counts": "tallyfit.inputs.counts_csv", "CountData": "tallyfit.infer.counts",
     "log_likelihood": "tallyfit.infer.likelihood", "log_likelihood_grad": "tallyfit.infer.likelihood",
     "pointwise_log_likelihood": "tallyfit.infer.likelihood",
     "InputError": "tallyfit.infer.errors",

@@ -15,9 +15,11 @@ from typing import Any, Callable
 import pandas as pd
 
 from tallyfit.inputs.settings import RunSettings
-from tallyfit.infer.data import CountData, load_counts
+from tallyfit.infer.counts import CountData
+from tallyfit.inputs.counts_csv import load_counts
 from tallyfit.infer.errors import InputError
-from tallyfit.runfolder.store import RUN_FILES, write_atomic
+from tallyfit.runfolder.schema import RUN_FILES
+from tallyfit.runfolder.store import write_atomic
 
 INDEX_COLUMNS = ["site", "folder", "status", "detail", "diagnostics_passed", "stationary_exists_probability",
                  "p_extinct_100", "iucn_most_probable"]

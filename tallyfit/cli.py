@@ -1,17 +1,19 @@
 """The ``tallyfit`` command line.
 
-Exit codes: 0 ok; 1 a check failed (convergence diagnostics, audit); 2 bad input (the
-message names the file, row and column); 130 interrupted.
+Exit codes: 0 ok; 1 a check failed (convergence diagnostics, audit); 2 bad input or
+settings (the message names the file, row and column, or the setting); 3 an internal error
+(a fault in tallyfit itself: the message asks for a report); 130 interrupted.
 """
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from pathlib import Path
 from typing import Sequence
 
-EXIT_OK, EXIT_CHECK, EXIT_INPUT, EXIT_INTERRUPT = 0, 1, 2, 130
+EXIT_OK, EXIT_CHECK, EXIT_INPUT, EXIT_INTERNAL, EXIT_INTERRUPT = 0, 1, 2, 3, 130
 REPO = Path(__file__).resolve().parent.parent
 DEMO_COUNTS = REPO / "example_counts" / "copper_tarn.csv"
 
@@ -34,6 +36,15 @@ def _parser() -> argparse.ArgumentParser:
                                             "(needs replicate surveys); default: exact counts")
         sp.add_argument("--generation-time", type=float, dest="generation_time",
                         help="generation time in years, for the criterion E horizons")
+        sp.add_argument("--varying-years", dest="varying_years",
+                        choices=["none", "births", "births-and-deaths"],
+                        help="good and bad years: each census interval's conditions move every animal's "
+                             "births (or births and deaths) together; the year-to-year spread is estimated "
+                             "(default none)")
+        sp.add_argument("--covariates", type=Path, dest="covariates_file",
+                        help="covariate CSV (time, [site], one column per covariate); which covariates act "
+                             "on births or deaths, and their future values, go in the --config file's "
+                             "[covariates] table")
         imm = sp.add_mutually_exclusive_group()
         imm.add_argument("--immigration", dest="immigration", action="store_true", default=None,
                          help="include an immigration rate (default)")
@@ -139,7 +150,11 @@ def _settings_from_args(args: argparse.Namespace, base: "RunSettings | None" = N
                                  draws=getattr(args, "draws", None), tune=getattr(args, "tune", None),
                                  seed=getattr(args, "seed", None), max_size=getattr(args, "max_size", None),
                                  detection=detection, immigration=getattr(args, "immigration", None),
-                                 generation_time=getattr(args, "generation_time", None))
+                                 generation_time=getattr(args, "generation_time", None),
+                                 varying_years=(None if getattr(args, "varying_years", None) is None
+                                                else args.varying_years.replace("-", "_")),
+                                 covariates_file=(None if getattr(args, "covariates_file", None) is None
+                                                  else str(args.covariates_file.resolve())))
 
 
 def _cmd_batch(args: argparse.Namespace) -> int:
@@ -160,20 +175,25 @@ def _cmd_batch(args: argparse.Namespace) -> int:
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
-    from tallyfit.runfolder.store import audit_run
+    from tallyfit.runfolder.audit import audit_run
 
     res = audit_run(args.run)
-    for name, ok, detail in res.checks:
-        _say(args, f"{'ok  ' if ok else 'FAIL'} {name}: {detail}")
+    marks = {True: "ok  ", False: "FAIL", None: "n/a "}
+    for c in res.checks:
+        mark = marks[c.passed] if c.blocking or c.passed is not False else "warn"
+        _say(args, f"{mark} {c.name}: {c.detail} ({c.source})")
     if not res.passed:
-        print("tallyfit: audit failed:\n  " + "\n  ".join(res.problems), file=sys.stderr)
+        problems = [f"{c.name}: {c.detail}" for c in res.failed]
+        problems += [f"{c.name}: could not be checked ({c.detail})" for c in res.not_made if c.blocking]
+        print("tallyfit: audit failed:\n  " + "\n  ".join(problems), file=sys.stderr)
         return EXIT_CHECK
     _say(args, "audit passed")
     return EXIT_OK
 
 
 def _cmd_solve(args: argparse.Namespace) -> int:
-    from tallyfit.solve import load_rates_file, solve_rates
+    from tallyfit.inputs.rates_file import load_rates_file
+    from tallyfit.solve import solve_rates
 
     spec = load_rates_file(args.rates)
     result = solve_rates(spec)
@@ -186,7 +206,8 @@ def _cmd_solve(args: argparse.Namespace) -> int:
 
 
 def _cmd_simulate(args: argparse.Namespace) -> int:
-    from tallyfit.solve import load_rates_file, simulate_counts
+    from tallyfit.inputs.rates_file import load_rates_file
+    from tallyfit.solve import simulate_counts
 
     spec = load_rates_file(args.rates)
     table = simulate_counts(spec, args.times, sites=args.sites, seed=args.seed)
@@ -208,20 +229,24 @@ def main(argv: Sequence[str] | None = None) -> int:
     from tallyfit.infer.errors import InputError
 
     try:
-        from tallyfit.chain.errors import ChainError
-    except ImportError:  # pragma: no cover
-        ChainError = ValueError  # type: ignore[misc]
-    try:
         return COMMANDS[args.command](args)
     except InputError as exc:
         print(f"tallyfit: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
-    except ChainError as exc:
-        print(f"tallyfit: error: {exc}", file=sys.stderr)
+    except OSError as exc:  # the disk or the folder, not tallyfit: say which file and why
+        print(f"tallyfit: error: cannot write or read {exc.filename or 'a file'}: {exc.strerror or exc}; nothing "
+              "partial was left behind", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print("tallyfit: interrupted; nothing was written (any earlier run folder is unchanged)", file=sys.stderr)
         return EXIT_INTERRUPT
+    except Exception as exc:  # a fault in tallyfit itself: no traceback for the user, a note to report it
+        print(f"tallyfit: internal error ({type(exc).__name__}: {exc}). This is a fault in tallyfit, not in "
+              "your data; please report it with the command you ran (set TALLYFIT_DEBUG=1 to see the "
+              "traceback)", file=sys.stderr)
+        if os.environ.get("TALLYFIT_DEBUG"):
+            raise
+        return EXIT_INTERNAL
 
 
 if __name__ == "__main__":

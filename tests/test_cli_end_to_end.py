@@ -17,7 +17,7 @@ from PIL import Image
 
 from tallyfit.chain import BirthDeathChain
 from tallyfit.cli import main
-from tallyfit.runfolder.store import RUN_FILES
+from tallyfit.runfolder.schema import RUN_FILES
 
 FAST = ["--chains", "2", "--draws", "150", "--tune", "150", "--max-size", "60", "--seed", "7", "--quiet"]
 
@@ -55,7 +55,7 @@ def test_every_output_file_is_written(run_dir, counts_csv):
     summary = json.loads((run_dir / "summary.json").read_text())
     assert {"parameters", "derived", "diagnostics"} <= set(summary)
     for entry in summary["parameters"].values():
-        assert {"mean", "sd", "q05", "q50", "q95", "r_hat", "ess_bulk", "ess_tail"} <= set(entry)
+        assert {"mean", "sd", "q_lo", "q50", "q_hi", "r_hat", "ess_bulk", "ess_tail"} <= set(entry)
     assert "caution" in summary and "guidelines" in summary["caution"]
     run = tomllib.loads((run_dir / "run.toml").read_text())
     assert set(run["hashes"]) == {"counts.csv", "posterior.nc"} and run["settings"]["seed"] == 7
@@ -90,7 +90,7 @@ def test_audit_passes_or_reports_diagnostics_and_catches_tampering(run_dir, tmp_
         fh.write(bytes([byte[0] ^ 0xFF]))
     capsys.readouterr()
     assert main(["--quiet", "audit", str(copy)]) == 1
-    assert "hash posterior.nc" in capsys.readouterr().err
+    assert "hash of posterior.nc" in capsys.readouterr().err
 
 
 def test_same_seed_gives_identical_summary(run_dir, counts_csv, tmp_path):

@@ -11,7 +11,8 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 from tallyfit.cli import main
 from tallyfit.inputs.settings import RunSettings, load_settings
 from tallyfit.infer.errors import InputError
-from tallyfit.solve import load_rates_file, solve_rates
+from tallyfit.inputs.rates_file import load_rates_file
+from tallyfit.solve import solve_rates
 
 BAD_RUN_TOML = [
     ("[fit\nchains = 4", "not valid TOML"),

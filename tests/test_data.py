@@ -1,4 +1,4 @@
-"""Tests of infer.data: reading and checking counts tables.
+"""Tests of the counts reader and the count data model: reading and checking counts tables.
 
 The malformed inputs are written to files under pytest's tmp_path; each asserts the
 exception type, the file name, the line (and data row), the column and a fragment of
@@ -17,17 +17,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-import tallyfit.infer.data as data_mod
-from tallyfit.infer.data import (
-    DEFAULT_SITE,
-    MAX_EXACT_COUNT,
-    CountData,
-    SiteSeries,
-    Transitions,
-    file_sha256,
-    iter_transitions,
-    load_counts,
-)
+import tallyfit.infer.count_table as table_mod
+import tallyfit.inputs.counts_csv as csv_mod
+from tallyfit.infer.counts import DEFAULT_SITE, MAX_EXACT_COUNT, CountData, SiteSeries, Transitions, iter_transitions
+from tallyfit.inputs.counts_csv import load_counts
+from tallyfit.runfolder.store import sha256_file
 from tallyfit.infer.errors import CountsFileError, InputError
 
 # --------------------------------------------------------------------------- malformed
@@ -221,7 +215,7 @@ def test_bad_arguments(tmp_path: Path) -> None:
 def test_file_too_large_for_memory(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     path = tmp_path / "big.csv"
     path.write_text("time,count\n" + "".join(f"{t},{t % 7}\n" for t in range(2000)))
-    monkeypatch.setattr(data_mod, "_available_memory", lambda: 100_000)
+    monkeypatch.setattr(csv_mod, "available_bytes", lambda: 100_000)
     with pytest.raises(InputError, match="too large for the machine") as info:
         load_counts(path)
     assert "big.csv" in str(info.value)
@@ -235,12 +229,12 @@ def test_arrays_too_large_for_memory(tmp_path: Path, monkeypatch: pytest.MonkeyP
     path = tmp_path / "wide.csv"
     path.write_text("\n".join(lines) + "\n")
     # The file itself passes the read check (40 bytes per byte of ~6 kB < 4 MB)...
-    monkeypatch.setattr(data_mod, "_available_memory", lambda: 4_000_000)
+    monkeypatch.setattr(table_mod, "available_bytes", lambda: 4_000_000)
     with pytest.raises(CountsFileError, match="data too large for the machine") as info:
         load_counts(path)
     assert info.value.column == "survey"
     assert info.value.line == 301  # the 300th replicate at time 0
-    monkeypatch.setattr(data_mod, "_available_memory", lambda: None)
+    monkeypatch.setattr(table_mod, "available_bytes", lambda: 10 ** 12)
     assert load_counts(path).n_replicates == 300
 
 
@@ -382,10 +376,10 @@ def test_sha256_of_raw_bytes(tmp_path: Path) -> None:
     raw = ("\ufeff" + PLAIN.replace("\n", "\r\n")).encode()
     path = _write(tmp_path, raw)
     d = load_counts(path)
-    assert d.sha256 == hashlib.sha256(raw).hexdigest() == file_sha256(path)
+    assert d.sha256 == hashlib.sha256(raw).hexdigest() == sha256_file(path)
     assert load_counts(d.to_frame()).sha256 is None
-    with pytest.raises(InputError, match="cannot read"):
-        file_sha256(tmp_path / "missing.csv")
+    with pytest.raises(InputError, match="file not found"):
+        load_counts(tmp_path / "missing.csv")
 
 
 # --------------------------------------------------------------------------- round trip

@@ -7,8 +7,9 @@ import pytest
 import xarray as xr
 
 from tallyfit.chain import BirthDeathChain
-from tallyfit.infer.derive import (CATEGORIES, PushForwardSpec, horizons_with_iucn, iucn_category, iucn_horizons,
-                          push_forward, summarise)
+from tallyfit.infer.criterion_e import (CATEGORIES, criterion_e_category, criterion_e_horizons,
+                                        horizons_with_criterion_e)
+from tallyfit.infer.pushforward import PushForwardSpec, push_forward, summarise
 from tallyfit.infer.families import get_family
 from tallyfit.infer.scenarios import BASELINE, Scenario, scenarios_from_table
 from tallyfit.infer.errors import InputError
@@ -23,9 +24,9 @@ def _posterior(values: dict[str, list[float]]) -> xr.Dataset:
 def test_iucn_horizons_follow_criterion_e():
     # IUCN (2012) Red List Categories and Criteria v3.1, criterion E: CR max(10 y, 3 G), EN max(20 y, 5 G),
     # both capped at 100 y; VU 100 y.
-    assert iucn_horizons(None) == {"CR": 10.0, "EN": 20.0, "VU": 100.0}
-    assert iucn_horizons(5.0) == {"CR": 15.0, "EN": 25.0, "VU": 100.0}
-    assert iucn_horizons(40.0) == {"CR": 100.0, "EN": 100.0, "VU": 100.0}
+    assert criterion_e_horizons(None) == {"CR": 10.0, "EN": 20.0, "VU": 100.0}
+    assert criterion_e_horizons(5.0) == {"CR": 15.0, "EN": 25.0, "VU": 100.0}
+    assert criterion_e_horizons(40.0) == {"CR": 100.0, "EN": 100.0, "VU": 100.0}
 
 
 def test_iucn_category_thresholds():
@@ -33,7 +34,7 @@ def test_iucn_category_thresholds():
     p_cr = np.array([0.5, 0.49, 0.1, 0.0, 0.0])
     p_en = np.array([0.6, 0.2, 0.19, 0.05, 0.0])
     p_vu = np.array([0.9, 0.5, 0.3, 0.1, 0.0999])
-    assert [CATEGORIES[c] for c in iucn_category(p_cr, p_en, p_vu)] == ["CR", "EN", "VU", "VU", "below VU"]
+    assert [CATEGORIES[c] for c in criterion_e_category(p_cr, p_en, p_vu)] == ["CR", "EN", "VU", "VU", "below VU"]
 
 
 def test_push_forward_equals_chain_solvers_for_fixed_draws():
@@ -42,7 +43,7 @@ def test_push_forward_equals_chain_solvers_for_fixed_draws():
                        "carrying_capacity": [40.0, 25.0], "immigration": [0.5, 0.2]})
     cap = 120
     spec = PushForwardSpec(cap=cap, sites=("a", "b"), starts=(30, 8),
-                           horizons=horizons_with_iucn([5.0, 50.0], None), thresholds=(0, 3))
+                           horizons=horizons_with_criterion_e([5.0, 50.0], None), thresholds=(0, 3))
     ds = push_forward(fam, post, spec, [BASELINE, Scenario("cull", harvest_rate=0.2)], workers=1)
     sizes = np.arange(cap + 1)
     for i in range(2):

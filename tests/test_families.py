@@ -14,8 +14,9 @@ import pytensor.tensor as pt
 from scipy import stats
 
 from tallyfit.infer.errors import InputError
-from tallyfit.infer.families import (FAMILIES, Allee, DataScale, Linear, Logistic, PerSize, check_prior,
-                            get_family, scipy_prior)
+from tallyfit.infer.families import (FAMILIES, PRIOR_DISTRIBUTIONS, Allee, DataScale, Linear, Logistic,
+                                     PerSize, check_prior, get_family, pymc_prior_logp,
+                                     pymc_prior_variable, scipy_prior)
 
 SCALE = DataScale(time_scale=1.0, count_scale=30.0, size_lo=3.0, size_hi=60.0)
 
@@ -225,6 +226,39 @@ def test_scipy_prior_matches_lognormal_density():
                       type(stats.beta))
 
 
+# one example of every distribution of the prior language, and points inside its support
+PRIOR_EXAMPLES = {
+    "lognormal": ({"dist": "lognormal", "mu": -0.5, "sigma": 1.3}, [0.05, 0.6, 3.0]),
+    "halfnormal": ({"dist": "halfnormal", "sigma": 0.7}, [0.01, 0.5, 2.0]),
+    "gamma": ({"dist": "gamma", "alpha": 2.5, "beta": 4.0}, [0.05, 0.6, 2.0]),
+    "exponential": ({"dist": "exponential", "lam": 3.0}, [0.01, 0.4, 2.0]),
+    "uniform": ({"dist": "uniform", "lower": 0.2, "upper": 1.7}, [0.3, 1.0, 1.6]),
+    "normal": ({"dist": "normal", "mu": 0.4, "sigma": 2.0}, [-3.0, 0.1, 4.0]),
+    "beta": ({"dist": "beta", "alpha": 2.0, "beta": 5.0}, [0.05, 0.3, 0.9]),
+}
+
+
+def test_prior_examples_cover_the_table():
+    assert set(PRIOR_EXAMPLES) == set(PRIOR_DISTRIBUTIONS)
+
+
+@pytest.mark.parametrize("name", sorted(PRIOR_EXAMPLES))
+def test_pymc_prior_density_matches_scipy(name):
+    # scipy.stats densities (an implementation independent of PyMC) against the PyMC
+    # side of the same table entry, for the density and for a named model variable
+    import pymc as pm
+
+    spec, points = PRIOR_EXAMPLES[name]
+    x = np.asarray(points)
+    expected = scipy_prior(spec).logpdf(x)
+    got = pymc_prior_logp(spec, pt.as_tensor_variable(x)).eval()
+    np.testing.assert_allclose(got, expected, rtol=1e-12)
+    with pm.Model(coords={"k": [0, 1, 2]}):
+        rv = pymc_prior_variable("theta", spec, dims="k")
+    assert tuple(rv.shape.eval()) == (3,)
+    np.testing.assert_allclose(pm.logp(rv, x).eval(), expected, rtol=1e-12)
+
+
 def test_describe_states_formula_and_priors():
     fam = Allee(immigration=True)
     text = fam.describe(fam.default_priors(SCALE))
@@ -237,14 +271,14 @@ def test_describe_states_formula_and_priors():
 def test_regulated_coordinates_invert_and_jacobian_matches_finite_differences(immigration):
     # change of variables (common practice): the stated log|det ∂θ/∂y| against the
     # log-determinant (numpy.linalg.slogdet) of a central-difference Jacobian
-    from tallyfit.infer.families import RegulatedCoordinates, _Numpy
+    from tallyfit.infer.families import NUMPY, RegulatedCoordinates
 
     coords = RegulatedCoordinates(count_scale=SCALE.count_scale, immigration=immigration)
     theta = {"birth_rate": 0.9, "death_rate": 0.2, "carrying_capacity": 45.0}
     if immigration:
         theta["immigration"] = 2.5
     y = coords.from_parameters(theta)
-    back, log_jac = coords.to_parameters(_Numpy(), y)
+    back, log_jac = coords.to_parameters(NUMPY, y)
     for k, v in theta.items():
         assert float(back[k]) == pytest.approx(v, rel=1e-12)
     names = list(coords.names)
@@ -254,8 +288,8 @@ def test_regulated_coordinates_invert_and_jacobian_matches_finite_differences(im
         up, down = dict(y), dict(y)
         up[name] += h
         down[name] -= h
-        pu, _ = coords.to_parameters(_Numpy(), up)
-        pd_, _ = coords.to_parameters(_Numpy(), down)
+        pu, _ = coords.to_parameters(NUMPY, up)
+        pd_, _ = coords.to_parameters(NUMPY, down)
         jac[:, j] = [(float(pu[k]) - float(pd_[k])) / (2 * h) for k in coords.replaces]
     sign, logdet = np.linalg.slogdet(jac)
     assert sign != 0
@@ -300,8 +334,8 @@ def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian():
     # coordinates, equals Σ log p_k(θ_k) (scipy.stats densities) + log|det ∂θ/∂y|
     import pytensor as _pt
 
-    from tallyfit.infer.data import CountData
-    from tallyfit.infer.families import _Numpy
+    from tallyfit.infer.counts import CountData
+    from tallyfit.infer.families import NUMPY
     from tallyfit.infer.model import build_count_model
 
     data = CountData.single(np.arange(8.0), np.array([20, 24, 27, 31, 30, 33, 29, 32.0]))
@@ -313,7 +347,7 @@ def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian():
     graph = model.replace_rvs_by_values([model["coordinate_prior"]])[0]
     fn = _pt.function(model.value_vars, graph, on_unused_input="ignore")
     value = float(fn(*[y[v.name] for v in model.value_vars]))
-    _, log_jac = coords.to_parameters(_Numpy(), y)
+    _, log_jac = coords.to_parameters(NUMPY, y)
     expected = sum(scipy_prior(cm.priors[k]).logpdf(v) for k, v in theta.items()) + float(log_jac)
     assert value == pytest.approx(expected, rel=1e-10)
 

@@ -2,6 +2,8 @@
 from __future__ import annotations
 
 import itertools
+import subprocess
+import sys
 from types import SimpleNamespace
 
 import mpmath as mp
@@ -12,8 +14,10 @@ import pytest
 import scipy.linalg as sla
 from scipy import stats
 
-from tallyfit.infer.errors import (CapTooSmallError, CountValueError, InputError, InvalidRatesError,
-                          LikelihoodUnderflowError, ReplicateMismatchError)
+from tallyfit.chain.errors import RateError
+from tallyfit.infer.counts import CountData
+from tallyfit.infer.errors import (CapTooSmallError, CountValueError, InputError,
+                                   LikelihoodUnderflowError, ReplicateMismatchError)
 from tallyfit.infer.likelihood import (CountLikelihoodOp, evaluate_likelihood, log_likelihood,
                               log_likelihood_grad, pointwise_log_likelihood)
 from reference import generator
@@ -130,11 +134,46 @@ def test_clear_errors():
         log_likelihood([0.0, 0.0], [10, 11], b, d)
     with pytest.raises(CountValueError):
         log_likelihood([0.0, 1.0], [10, 11.5], b, d)
-    with pytest.raises(InvalidRatesError):
+    with pytest.raises(RateError) as info:
         log_likelihood([0.0, 1.0], [10, 11], b, np.r_[0.1, d[1:]])
-    with pytest.raises(InvalidRatesError):
+    assert (info.value.name, info.value.size, info.value.value) == ("death", 0, 0.1)
+    with pytest.raises(RateError) as info:
+        log_likelihood([0.0, 1.0], [10, 11], np.r_[b[:7], -1.0, b[8:]], d)
+    assert (info.value.name, info.value.size, info.value.value) == ("birth", 7, -1.0)
+    with pytest.raises(RateError) as info:
         log_likelihood([0.0, 1.0], [10, 11], b, d, detection=1.5)
+    assert info.value.name == "detection"
+    with pytest.raises(RateError):
+        log_likelihood([0.0, 1.0], [10, 11], b, d, tol=0.0)
+    # a data object other than CountData is checked cell by cell like arrays
+    bad = SimpleNamespace(series=[SimpleNamespace(times=np.array([0.0, 1.0]),
+                                                  counts=np.array([10.0, -1.0]))])
+    with pytest.raises(CountValueError):
+        log_likelihood(bad, None, b, d)
     assert issubclass(CapTooSmallError, InputError) and issubclass(InputError, ValueError)
+
+
+def test_count_data_gives_the_same_numbers_as_arrays():
+    # CountData is taken without re-checking its cells: same value and gradients, bit for
+    # bit, as the checked arrays; the value itself against scipy.linalg.expm (Al-Mohy &
+    # Higham 2009)
+    b, d = logistic(60, 24, jitter=0.3)
+    t, c = SERIES[0]
+    data = CountData.single(t, c)
+    from_data = evaluate_likelihood(data, None, b, d)
+    from_arrays = evaluate_likelihood(t, c, b, d)
+    assert from_data.ll == from_arrays.ll
+    assert np.array_equal(from_data.d_birth, from_arrays.d_birth)
+    assert np.array_equal(from_data.d_death, from_arrays.d_death)
+    assert abs(from_data.ll - expm_loglik([SERIES[0]], b, d)) <= 1e-8
+
+
+def test_import_does_not_load_pytensor():
+    # the package loads PyTensor only when an Op is asked for (common practice: lazy
+    # module attributes, PEP 562)
+    code = ("import sys, tallyfit.infer.likelihood as lk; assert 'pytensor' not in sys.modules; "
+            "lk.CountLikelihoodOp; assert 'pytensor' in sys.modules")
+    subprocess.run([sys.executable, "-c", code], check=True)
 
 
 def test_structural_zero_is_minus_inf_but_underflow_raises():

@@ -1,15 +1,21 @@
-"""Run folders: crash-safe writing, hashes and the audit (on a genuine small InferenceData)."""
+"""Run folders: crash-safe writing, hashes, the schema's reader and the one audit."""
 from __future__ import annotations
 
 import json
 import os
+import shutil
 
 import arviz as az
 import numpy as np
 import pytest
+import xarray as xr
 
+from runs import make_run_folder
 from tallyfit.cli import main
-from tallyfit.runfolder.store import RUN_FILES, audit_run, sha256_file, staged_folder, write_run_toml
+from tallyfit.runfolder.audit import audit_run
+from tallyfit.runfolder.reader import RunFolderError, open_run
+from tallyfit.runfolder.schema import RUN_FILES, SUMMARY_SECTIONS, categories_from_attrs
+from tallyfit.runfolder.store import json_value, sha256_file, staged_folder
 
 
 def test_staged_folder_renames_only_when_complete(tmp_path):
@@ -37,60 +43,98 @@ def test_leftovers_of_a_killed_run_are_cleared(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]
 
 
-def test_sha256_matches_hashlib_known_value(tmp_path):
+def test_sha256_matches_known_value(tmp_path):
     # FIPS 180-4 test vector "abc" (common practice)
     path = tmp_path / "abc"
     path.write_bytes(b"abc")
     assert sha256_file(path) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
 
 
-def _fake_run(folder, *, good: bool):
-    """A run folder around a genuine InferenceData: well-mixed iid draws (good) or stuck chains (bad)."""
-    rng = np.random.default_rng(1)
-    n_chain, n_draw = 4, 500
-    if good:
-        x = rng.normal(0.5, 0.1, (n_chain, n_draw))
-    else:
-        x = rng.normal(0.5, 0.01, (n_chain, n_draw)) + np.arange(n_chain)[:, None]  # chains disagree
-    idata = az.from_dict(posterior={"birth_rate": x},
-                         sample_stats={"diverging": np.zeros((n_chain, n_draw), bool),
-                                       "energy": rng.normal(size=(n_chain, n_draw))})
-    folder.mkdir()
-    idata.to_netcdf(str(folder / "posterior.nc"))
-    (folder / "counts.csv").write_text("time,count\n0,5\n1,6\n")
-    for name in ("derived.nc", "summary.csv", "report.html"):
-        (folder / name).write_text("x")
-    (folder / "summary.json").write_text(json.dumps({"diagnostics": {"passed": good}}))
-    write_run_toml(folder, {"seed": 1})
+def test_json_values_are_plain():
+    doc = json_value({"a": np.float64(1.5), "b": np.int64(3), "c": np.array([1.0, np.nan]), "d": (np.bool_(True),)})
+    assert doc == {"a": 1.5, "b": 3, "c": [1.0, None], "d": [True]}
+    assert json.loads(json.dumps(doc, allow_nan=False)) == doc
+    with pytest.raises(TypeError):
+        json_value({"x": object()})
 
 
-def test_audit_passes_a_good_run_and_fails_when_tampered(tmp_path, capsys):
-    run = tmp_path / "good"
-    _fake_run(run, good=True)
+@pytest.fixture(scope="module")
+def good_run(tmp_path_factory):
+    """A well-mixed run (4 × 150 independent draws) written by the writer, without a report."""
+    return make_run_folder(tmp_path_factory.mktemp("run") / "good", chains=4, draws=150, seed=12, divergent=0,
+                           report=False)
+
+
+def test_writer_follows_the_schema(good_run):
+    rf = open_run(good_run)
+    assert not rf.notes
+    assert set(json.loads((good_run / "summary.json").read_text())) == set(SUMMARY_SECTIONS)
+    assert rf.categories == ["below VU", "VU", "EN", "CR"]
+    assert rf.criterion_e_horizons == {"CR": 10.0, "EN": 20.0, "VU": 100.0} and rf.generation_time is None
+    assert [s["name"] for s in rf.scenario_settings] == rf.scenarios == ["baseline", "cull"]
+    with xr.open_dataset(good_run / "derived.nc") as ds:
+        assert categories_from_attrs(ds["iucn_category"].attrs, "derived.nc") == rf.categories
+    assert rf.counts is not None and rf.counts["count"].notna().sum() == 30
+
+
+def test_audit_passes_a_good_run_and_fails_when_tampered(good_run, tmp_path, capsys):
+    run = tmp_path / "copy"
+    shutil.copytree(good_run, run)
+    (run / "report.html").write_text("<!DOCTYPE html>")  # the writer was asked for no report
     res = audit_run(run)
-    assert res.passed, res.problems
+    assert res.passed, [(c.name, c.detail) for c in res.failed + res.not_made]
     assert main(["--quiet", "audit", str(run)]) == 0
     with open(run / "counts.csv", "a") as fh:
-        fh.write("2,7\n")  # someone edits the data afterwards
+        fh.write("2025,7\n")  # someone edits the data afterwards
     res = audit_run(run)
-    assert not res.passed and any("hash counts.csv" in p for p in res.problems)
+    assert [c.name for c in res.failed] == ["hash of counts.csv"]
     assert main(["--quiet", "audit", str(run)]) == 1
-    assert "hash counts.csv" in capsys.readouterr().err
+    assert "hash of counts.csv" in capsys.readouterr().err
 
 
-def test_audit_recomputes_diagnostics(tmp_path):
+def test_audit_recomputes_diagnostics(good_run, tmp_path):
     # Vehtari et al. (2021): chains that disagree give rank-normalised R-hat far above 1.01.
-    run = tmp_path / "bad"
-    _fake_run(run, good=False)
+    run = tmp_path / "stuck"
+    shutil.copytree(good_run, run)
+    idata = az.from_netcdf(run / "posterior.nc")
+    post = idata.posterior.load()
+    post["birth_rate"] = post["birth_rate"] + post["chain"]  # every chain somewhere else
+    idata.posterior = post
+    idata.to_netcdf(str(run / "changed.nc"))  # not over the file it is being read from
+    os.replace(run / "changed.nc", run / "posterior.nc")
     res = audit_run(run)
-    assert not res.passed
-    assert any(p.startswith("r_hat of birth_rate") for p in res.problems)
+    names = [c.name for c in res.failed]
+    assert "R-hat" in names and "hash of posterior.nc" in names
+    r_hat = next(c for c in res.failed if c.name == "R-hat")
+    assert "birth_rate" in r_hat.detail and "disagrees" in r_hat.source  # summary.json recorded a pass
 
 
-def test_audit_of_missing_files(tmp_path):
+def test_off_schema_files_are_named_not_guessed(good_run, tmp_path):
+    run = tmp_path / "renamed"
+    shutil.copytree(good_run, run)
+    doc = json.loads((run / "summary.json").read_text())
+    doc["checks"] = doc.pop("diagnostics")  # a renamed key
+    (run / "summary.json").write_text(json.dumps(doc))
+    rf = open_run(run)
+    assert rf.summary is None and any("summary.json" in n and "diagnostics" in n for n in rf.notes)
+    assert not audit_run(run).passed
+    with xr.open_dataset(good_run / "derived.nc") as ds:
+        broken = ds.load()
+    del broken.attrs["criterion_e_horizons_json"]
+    broken.to_netcdf(run / "derived.nc", engine="h5netcdf")
+    with pytest.raises(RunFolderError, match="criterion_e_horizons_json"):
+        open_run(run)
+
+
+def test_audit_of_missing_or_damaged_files(tmp_path):
     run = tmp_path / "empty"
     run.mkdir()
     res = audit_run(run)
     assert not res.passed
-    assert {f"file {n}: missing" for n in RUN_FILES} <= set(res.problems)
+    files = next(c for c in res.checks if c.name == "files")
+    assert not files.passed and all(n in files.detail for n in RUN_FILES)
     assert not audit_run(tmp_path / "nowhere").passed
+    (run / "posterior.nc").write_bytes(b"\x89HDF\r\n\x1a\n but not really")
+    (run / "derived.nc").write_bytes(b"nothing")
+    res = audit_run(run)
+    assert any(c.name == "run folder readable" and "posterior.nc" in c.detail for c in res.failed)

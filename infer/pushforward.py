@@ -20,41 +20,18 @@ from __future__ import annotations
 import math
 import os
 from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass
-from typing import Any, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 import xarray as xr
 
 from tallyfit.chain import BirthDeathChain, ChainError
-from .scenarios import BASELINE, Scenario
+from tallyfit.infer.criterion_e import CATEGORIES, criterion_e_category, criterion_e_horizons
+from tallyfit.infer.scenarios import BASELINE, Scenario
 
 #: Key of a draw's per-site parameters under partial pooling (a list in the order of spec.sites).
 _SITE_PARAMS = "_site_params"
-
-#: IUCN (2012) Red List Categories and Criteria v3.1, criterion E, in order of severity.
-CATEGORIES = ("below VU", "VU", "EN", "CR")
-
-
-def iucn_horizons(generation_time: float | None) -> dict[str, float]:
-    """Criterion E horizons in years: CR max(10 y, 3 G), EN max(20 y, 5 G), both at most 100 y; VU 100 y.
-
-    IUCN (2012) Red List Categories and Criteria v3.1, criterion E. Without a generation
-    time the shortest horizons (10 and 20 years) are used, which is right when G <= 3.3 years.
-    """
-    g = 0.0 if generation_time is None else float(generation_time)
-    return {"CR": min(100.0, max(10.0, 3 * g)), "EN": min(100.0, max(20.0, 5 * g)), "VU": 100.0}
-
-
-def iucn_category(p_cr: np.ndarray, p_en: np.ndarray, p_vu: np.ndarray) -> np.ndarray:
-    """Category code per draw (index into CATEGORIES): CR if P >= 0.5 at the CR horizon,
-    EN if P >= 0.2 at the EN horizon, VU if P >= 0.1 within 100 years (IUCN 2012, criterion E)."""
-    code = np.zeros(np.shape(p_cr), dtype=np.int8)
-    code = np.where(p_vu >= 0.1, 1, code)
-    code = np.where(p_en >= 0.2, 2, code)
-    code = np.where(p_cr >= 0.5, 3, code)
-    return code.astype(np.int8)
-
 
 @dataclass(frozen=True)
 class PushForwardSpec:
@@ -67,6 +44,10 @@ class PushForwardSpec:
         thresholds: quasi-extinction thresholds (0 = extinction).
         generation_time: years per generation for criterion E (None: shortest horizons).
         tol: error bound wanted on each extinction probability.
+        varying: None, "births" or "births_and_deaths": with good and bad years the draws'
+            ``environment_sd`` drives the annual chain (horizons must be whole time units).
+        birth_covariates, death_covariates: the covariates the fit used.
+        future_covariates: their values in the forecasts (a scenario may replace some).
     """
 
     cap: int
@@ -76,9 +57,19 @@ class PushForwardSpec:
     thresholds: tuple[int, ...] = (0,)
     generation_time: float | None = None
     tol: float = 1e-10
+    varying: str | None = None
+    birth_covariates: tuple[str, ...] = ()
+    death_covariates: tuple[str, ...] = ()
+    future_covariates: Mapping[str, float] = field(default_factory=dict)
+
+    @property
+    def affects(self) -> str:
+        """The annual chain's setting: "birth" or "birth_and_death"."""
+        return "birth_and_death" if self.varying == "births_and_deaths" else "birth"
 
 
-def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray], scenario: Scenario,
+def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray],
+                           transform: Callable[[np.ndarray, np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]],
                            cap: int) -> tuple[bool, float, np.ndarray | None]:
     """Existence of the stationary law of the family continued beyond the cap, the mass it puts
     above the cap, and its pmf on 0..cap (renormalised within the cap) when it exists."""
@@ -86,7 +77,7 @@ def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray], scenar
     def rates(n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         sizes = np.concatenate([[0], np.asarray(n).ravel()])  # size 0 first: scenarios read ι = λ_0
         b, d = family.numpy_rates(params, sizes)
-        b, d = scenario.apply(b[0], d[0], sizes)
+        b, d = transform(b[0], d[0], sizes)
         return b[1:].reshape(np.shape(n)), d[1:].reshape(np.shape(n))
 
     # one evaluation of the formula well past the cap serves every truncation the series tries
@@ -109,10 +100,12 @@ def _stationary_beyond_cap(family: Any, params: Mapping[str, np.ndarray], scenar
 
 
 def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec,
-              starts: Sequence[int] | None = None) -> dict[str, Any]:
+              starts: Sequence[int] | None = None, sigma: float = 0.0) -> dict[str, Any]:
     """All derived quantities of one chain (capped rates over 0..cap), from ``starts``
-    (default: every site's last count)."""
+    (default: every site's last count); with σ > 0 those of the annual chain."""
     starts = spec.starts if starts is None else starts
+    if sigma > 0:
+        return _one_annual_draw(birth, death, spec, starts, sigma)
     out: dict[str, Any] = {}
     chain = BirthDeathChain(birth, death)
     try:
@@ -145,7 +138,68 @@ def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec,
     return out
 
 
+def _one_annual_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec, starts: Sequence[int],
+                     sigma: float) -> dict[str, Any]:
+    """The annual chain's quantities (good and bad years, chain.environment), from ``starts``."""
+    from tallyfit.chain.environment import EnvironmentalChain
+
+    b0 = birth.copy()
+    b0[0] = 0.0  # extinction: 0 absorbing
+    closed = EnvironmentalChain(b0, death, sigma, affects=spec.affects)
+    out: dict[str, Any] = {}
+    try:
+        qs = closed.quasi_stationary()
+        out["quasi_pmf"], out["quasi_decay_rate"], out["quasi_mean"] = qs.pmf, qs.decay_rate, qs.mean
+    except ChainError:
+        out["quasi_pmf"] = np.full(spec.cap + 1, np.nan)
+        out["quasi_decay_rate"] = out["quasi_mean"] = np.nan
+    out["log10_mean_time"] = np.zeros(0)
+    years = np.asarray(spec.horizons, dtype=float)
+    shape = (len(starts), len(spec.thresholds), years.size)
+    out["extinction_probability"], out["extinction_error_bound"] = np.empty(shape), np.empty(shape)
+    if len(starts):
+        st = np.asarray(starts, dtype=np.int64)
+        out["log10_mean_time"] = closed.mean_time_to_extinction(st).log_mean / math.log(10)
+        curves = closed.extinction_curves(st, years, thresholds=spec.thresholds, tol=spec.tol)
+        # (threshold, start, year) -> (start, threshold, year)
+        out["extinction_probability"] = np.transpose(curves.probability, (1, 0, 2))
+        out["extinction_error_bound"] = np.transpose(curves.error_bound, (1, 0, 2))
+    return out
+
+
+def _annual_stationary(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec,
+                       sigma: float) -> tuple[bool, float, np.ndarray | None]:
+    """The annual chain's long-run law on 0..N, and its mass in the top tenth below the cap
+    (under good and bad years there is no product form to continue past the cap)."""
+    from tallyfit.chain.environment import EnvironmentalChain
+
+    if birth[0] <= 0:
+        return False, float("nan"), None
+    lr = EnvironmentalChain(birth, death, sigma, affects=spec.affects).long_run(tol=spec.tol)
+    return bool(lr.exists), float(lr.top_mass + lr.leaked), lr.pmf
+
+
 _SITE_KEYS = ("log10_mean_time", "extinction_probability", "extinction_error_bound")
+#: Posterior variables of the environment and the covariate effects.
+_ENVIRONMENT_VARS = ("environment_sd", "birth_effect", "death_effect")
+
+
+def _conditions(params: Mapping[str, np.ndarray], scenario: Scenario, spec: PushForwardSpec
+                ) -> tuple[float, Callable[[np.ndarray, np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]]:
+    """A draw's environment σ and the map from its fitted rates to the forecast's rates: the
+    future covariate values (the scenario's where it states them), then the scenario."""
+    sigma = float(np.ravel(params["environment_sd"])[0]) if "environment_sd" in params else 0.0
+    future = {**spec.future_covariates, **dict(scenario.covariates)}
+    shift = []
+    for name, covs in (("birth_effect", spec.birth_covariates), ("death_effect", spec.death_covariates)):
+        beta = np.ravel(params[name]) if covs else np.zeros(0)
+        shift.append(float(beta @ np.array([future[c] for c in covs])) if covs else 0.0)
+
+    def transform(b: np.ndarray, d: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        iota = b[..., :1]
+        return scenario.apply(iota + (b - iota) * math.exp(shift[0]), d * math.exp(shift[1]), sizes)
+
+    return sigma, transform
 
 
 def _work(args: tuple) -> list[dict[str, Any]]:
@@ -155,19 +209,21 @@ def _work(args: tuple) -> list[dict[str, Any]]:
     for params in params_list:
         per_site = params.get(_SITE_PARAMS)
         params = {k: v for k, v in params.items() if k != _SITE_PARAMS}
+        sigma, transform = _conditions(params, scenario, spec)
         b, d = family.numpy_rates(params, sizes)
-        b, d = scenario.apply(b[0], d[0], sizes)
-        res = _one_draw(b, d, spec, starts=() if per_site is not None else None)
+        b, d = transform(b[0], d[0], sizes)
+        res = _one_draw(b, d, spec, starts=() if per_site is not None else None, sigma=sigma)
         if per_site is not None:
             # partial pooling: each site's own rates for what is indexed by site
             parts = []
             for own, start in zip(per_site, spec.starts):
                 bi, di = family.numpy_rates(own, sizes)
-                bi, di = scenario.apply(bi[0], di[0], sizes)
-                parts.append(_one_draw(bi, di, spec, starts=(start,)))
+                bi, di = transform(bi[0], di[0], sizes)
+                parts.append(_one_draw(bi, di, spec, starts=(start,), sigma=sigma))
             for key in _SITE_KEYS:
                 res[key] = np.concatenate([part[key] for part in parts])
-        exists, above, pmf = _stationary_beyond_cap(family, params, scenario, spec.cap)
+        exists, above, pmf = (_annual_stationary(b, d, spec, sigma) if sigma > 0
+                              else _stationary_beyond_cap(family, params, transform, spec.cap))
         res["stationary_exists"] = exists
         res["stationary_mass_above_cap"] = above
         res["stationary_pmf"] = pmf if pmf is not None else np.full(spec.cap + 1, np.nan)
@@ -209,11 +265,12 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
             (from :func:`infer.model.site_draws`).
     """
     names = list(getattr(family, "parameters", [])) + [s.name for s in getattr(family, "free_parameters", [])]
+    names += [n for n in _ENVIRONMENT_VARS if n in posterior]
     params, n_chain, n_draw = _draw_params(posterior, list(dict.fromkeys(names)) or list(posterior.data_vars))
     if "site_offset" in posterior:
-        # model.site_draws is the one place that applies site offsets (imported here only:
-        # infer.model loads PyTensor, which a push-forward without pooling does not need)
-        from .model import site_draws
+        # draws.site_draws is the one place that applies site offsets (imported here only:
+        # it loads the model and PyTensor, which a push-forward without pooling does not need)
+        from tallyfit.infer.draws import site_draws
 
         by_site = [site_draws(posterior, family, site, pooled=True) for site in spec.sites]
         for i, p in enumerate(params):
@@ -279,22 +336,12 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
     )
     pmf = ds["stationary_pmf"]
     ds["stationary_mean"] = (pmf * ds["size"]).sum("size", skipna=False)
-    hz = iucn_horizons(spec.generation_time)
+    hz = criterion_e_horizons(spec.generation_time)
     ext = ds["extinction_probability_all_sites"].sel(threshold=0 if 0 in spec.thresholds else spec.thresholds[0])
     p = {k: ext.interp(horizon=v).values if v not in spec.horizons else ext.sel(horizon=v).values
          for k, v in hz.items()}
-    ds["iucn_category"] = (dims_s, iucn_category(p["CR"], p["EN"], p["VU"]))
-    ds["iucn_category"].attrs.update(codes=", ".join(f"{i}={c}" for i, c in enumerate(CATEGORIES)),
-                                     horizons_years=", ".join(f"{k}={v:g}" for k, v in hz.items()),
-                                     source="IUCN (2012) Red List Categories and Criteria v3.1, criterion E")
-    ds.attrs.update(cap=spec.cap, generation_time=-1.0 if spec.generation_time is None else spec.generation_time,
-                    tol=spec.tol, scenarios=str([s.as_dict() for s in scenarios]))
+    ds["iucn_category"] = (dims_s, criterion_e_category(p["CR"], p["EN"], p["VU"]))
     return ds
-
-
-def horizons_with_iucn(horizons: Sequence[float], generation_time: float | None) -> tuple[float, ...]:
-    """The user's horizons together with the criterion E horizons, sorted, without duplicates."""
-    return tuple(sorted(set(float(h) for h in horizons) | set(iucn_horizons(generation_time).values())))
 
 
 def summarise(ds: xr.Dataset, *, level: float = 0.9) -> dict[str, Any]:

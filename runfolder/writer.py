@@ -1,0 +1,212 @@
+"""Writing a complete run folder from what a run produced (the one writer; see the schema).
+
+:func:`write_run` takes a :class:`RunRecord` and writes every file of
+:data:`~tallyfit.runfolder.schema.RUN_FILES` into a staged folder that is renamed into
+place only when all of it (the report included) is written, so a crash, a kill or a full
+disk never leaves a folder that looks complete.
+"""
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import tomli_w
+import xarray as xr
+
+from tallyfit.infer.criterion_e import CATEGORIES
+from tallyfit.infer.criterion_e import SOURCE as CRITERION_E_SOURCE
+from tallyfit.infer.diagnostics import LIMIT_SOURCES, Convergence
+
+from . import schema as S
+from .store import json_value, sha256_file, staged_folder, toml_value, write_atomic
+
+__all__ = ["RunRecord", "write_run", "summary_document", "summary_rows", "encode_derived", "package_versions",
+           "PACKAGES"]
+
+#: Packages whose versions run.toml records.
+PACKAGES = ("tallyfit", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz", "numba", "matplotlib")
+
+
+@dataclass
+class RunRecord:
+    """Everything a run folder is written from.
+
+    Attributes:
+        counts_bytes: counts.csv, the input exactly as read.
+        idata: the ArviZ InferenceData of the fit.
+        derived: the push-forward Dataset (``tallyfit.infer.pushforward.push_forward``).
+        derived_summary: its summary (``tallyfit.infer.pushforward.summarise``).
+        convergence: the fit's diagnostics (``tallyfit.infer.diagnostics.diagnose``).
+        cap_check: the fit's cap check (ok, message and measurements).
+        criterion_e_horizons: {"CR", "EN", "VU": years}.
+        generation_time: years per generation, or None.
+        scenarios: one dict per scenario, baseline first (``Scenario.as_dict()``).
+        tol: the solvers' tolerance.
+        cap: the size cap N.
+        data: source, sites, n_counts, sha256, time_unit.
+        family: name, formula, description.
+        settings: the resolved run settings (plain data).
+        starts: {site: start size of the forecasts}.
+        seed: the run's seed.
+        warnings: sentences the user must read.
+    """
+
+    counts_bytes: bytes
+    idata: Any
+    derived: xr.Dataset
+    derived_summary: Mapping[str, Any]
+    convergence: Convergence
+    cap_check: Mapping[str, Any]
+    criterion_e_horizons: Mapping[str, float]
+    generation_time: float | None
+    scenarios: Sequence[Mapping[str, Any]]
+    tol: float
+    cap: int
+    data: Mapping[str, Any]
+    family: Mapping[str, Any]
+    settings: Mapping[str, Any]
+    starts: Mapping[str, int]
+    seed: int
+    warnings: list[str] = field(default_factory=list)
+
+
+def package_versions() -> dict[str, str]:
+    """Installed versions of the packages a run depends on ("not installed" when absent)."""
+    out = {}
+    for name in PACKAGES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def _diagnostics_record(c: Convergence) -> dict[str, Any]:
+    limits = {k: {"limit": getattr(c.limits, k), "source": LIMIT_SOURCES[k]} for k in LIMIT_SOURCES}
+    return {"passed": c.passed, "failed": list(c.failed), "limits": limits, "divergences": list(c.divergences),
+            "bfmi": list(c.bfmi)}
+
+
+def summary_document(record: RunRecord) -> dict[str, Any]:
+    """summary.json of a run (SUMMARY_SECTIONS), as plain JSON data.
+
+    Args:
+        record: the run.
+
+    Returns:
+        dict with every section of :data:`~tallyfit.runfolder.schema.SUMMARY_SECTIONS`.
+    """
+    table = record.convergence.table
+    parameters = {str(label): {k: row[k] for k in S.PARAMETER_COLUMNS} for label, row in table.iterrows()}
+    doc = {"schema_version": S.SCHEMA_VERSION, "caution": S.CAUTION, "data": dict(record.data),
+           "family": dict(record.family), "settings": dict(record.settings), "cap": int(record.cap),
+           "starts": {str(k): int(v) for k, v in record.starts.items()}, "parameters": parameters,
+           "derived": dict(record.derived_summary), "diagnostics": _diagnostics_record(record.convergence),
+           "cap_check": dict(record.cap_check), "warnings": list(record.warnings)}
+    assert set(doc) == set(S.SUMMARY_SECTIONS), "summary_document and the schema disagree"
+    return json_value(doc)
+
+
+def summary_rows(summary: Mapping[str, Any]) -> pd.DataFrame:
+    """summary.csv: one row per parameter and per derived quantity (SUMMARY_CSV_COLUMNS).
+
+    Args:
+        summary: the summary.json document.
+
+    Returns:
+        DataFrame with the schema's columns (blank where a column does not apply).
+    """
+    rows: list[dict[str, Any]] = []
+    for name, entry in summary["parameters"].items():
+        rows.append({"kind": "parameter", "scenario": "", "quantity": name, **entry})
+    derived = summary["derived"]
+    for sc, entry in derived.items():
+        if not isinstance(entry, Mapping):
+            continue  # credible_level
+
+        def add(quantity: str, st: Mapping[str, Any] | float | None) -> None:
+            if isinstance(st, Mapping):
+                rows.append({"kind": "derived", "scenario": sc, "quantity": quantity,
+                             **{k: st.get(k) for k in ("mean", "q_lo", "q50", "q_hi")}})
+            else:
+                rows.append({"kind": "derived", "scenario": sc, "quantity": quantity, "mean": st})
+
+        add("stationary_exists_probability", entry["stationary_exists_probability"])
+        add("stationary_mean", entry["stationary_mean"])
+        add("quasi_stationary_mean", entry["quasi_stationary_mean"])
+        add("quasi_decay_rate", entry["quasi_decay_rate"])
+        for site, st in entry["log10_mean_time_to_extinction"].items():
+            add(f"log10_mean_time_to_extinction[{site}]", st)
+        for thr, per_h in entry["extinction_probability_all_sites"].items():
+            for h, st in per_h.items():
+                add(f"extinction_probability[{thr}, horizon={h}]", st)
+        for cat, p in entry["iucn_category_probability"].items():
+            add(f"iucn_category_probability[{cat}]", p)
+    return pd.DataFrame(rows, columns=list(S.SUMMARY_CSV_COLUMNS))
+
+
+def encode_derived(derived: xr.Dataset, record: RunRecord) -> xr.Dataset:
+    """derived.nc as the schema lays it out: the structured attributes added.
+
+    Args:
+        derived: the push-forward Dataset.
+        record: the run (horizons, generation time, scenarios, tolerance, cap).
+
+    Returns:
+        a shallow copy with the schema's attributes.
+
+    Raises:
+        SchemaError: a variable of DERIVED_VARIABLES is missing or has other dims.
+    """
+    for name, dims in S.DERIVED_VARIABLES.items():
+        if name not in derived:
+            raise S.SchemaError("derived.nc", name, "variable missing")
+        if tuple(derived[name].dims) != dims:
+            raise S.SchemaError("derived.nc", name, f"dims {derived[name].dims}, expected {dims}")
+    out = derived.copy()
+    out[S.CATEGORY_VARIABLE].attrs.update(S.category_attrs(CATEGORIES, CRITERION_E_SOURCE))
+    out.attrs.update({S.ATTR_HORIZONS: S.encode_json_attr(dict(record.criterion_e_horizons)),
+                      S.ATTR_GENERATION_TIME: S.encode_json_attr(record.generation_time),
+                      S.ATTR_SCENARIOS: S.encode_json_attr(json_value(list(record.scenarios))),
+                      S.ATTR_TOL: float(record.tol), S.ATTR_CAP: int(record.cap)})
+    return out
+
+
+def write_run(out: str | Path, record: RunRecord, *,
+              report: Callable[[Path], Any] | None = None) -> Path:
+    """Write a complete run folder (crash-safe: staged, then renamed into place).
+
+    Args:
+        out: the run folder to create or replace.
+        record: what the run produced.
+        report: called with the staged folder once every other file is written (the
+            application passes ``tallyfit.reports.build_report``); None writes no report
+            (the folder is then not complete: for tests of the other files only).
+
+    Returns:
+        the run folder's path.
+
+    Raises:
+        OSError: the folder cannot be written (full disk, no permission); nothing is
+            left behind and an earlier run at ``out`` is untouched.
+        SchemaError: the record does not fit the schema.
+    """
+    summary = summary_document(record)
+    derived = encode_derived(record.derived, record)
+    with staged_folder(out) as tmp:
+        write_atomic(tmp / "counts.csv", record.counts_bytes)
+        record.idata.to_netcdf(str(tmp / "posterior.nc"))
+        derived.to_netcdf(tmp / "derived.nc", engine="h5netcdf")
+        write_atomic(tmp / "summary.json", json.dumps(summary, indent=2, allow_nan=False))
+        write_atomic(tmp / "summary.csv", summary_rows(summary).to_csv(index=False))
+        doc = {"settings": toml_value(record.settings), "run": {"seed": int(record.seed), "cap": int(record.cap)},
+               "versions": package_versions(), "hashes": {n: sha256_file(tmp / n) for n in S.HASHED_FILES}}
+        write_atomic(tmp / "run.toml", tomli_w.dumps(doc))
+        if report is not None:
+            report(tmp)
+    return Path(out)
