@@ -46,7 +46,7 @@ _LAZY = {
     "CountLikelihoodGradOp": "op",
     "GuardedLikelihoodOp": "guarded",
     "REFUSED_ERRORS": "guarded",
-    "MAX_STEPS": "guarded",
+    "MAX_STEPS": "sweeps",
 }
 
 

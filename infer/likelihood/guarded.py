@@ -16,19 +16,18 @@ from tallyfit.chain.errors import RateError
 from tallyfit.infer.errors import LikelihoodUnderflowError
 
 from .op import CountLikelihoodGradOp, CountLikelihoodOp
+from .sweeps import MAX_STEPS
 
 __all__ = ["GuardedLikelihoodOp", "REFUSED_ERRORS", "MAX_STEPS"]
 
-
-#: Largest number of uniformization steps (max total rate × longest census interval)
-#: a likelihood evaluation may need before the point is treated as impossible.
-MAX_STEPS = 2e6
 #: Errors that make the guarded Op refuse a point (log-likelihood −inf) instead of failing.
 REFUSED_ERRORS = (RateError, LikelihoodUnderflowError, MemoryError)
 
 
 def _too_fast(birth: np.ndarray, death: np.ndarray, longest_interval: float) -> bool:
-    """Rates so high that one census interval needs more than MAX_STEPS steps (or not finite)."""
+    """Rates so high that one census interval needs more than MAX_STEPS steps (or not finite):
+    a quick test on the whole range before any window is placed (sweeps.check_cost checks
+    each sweep's own window and rate scales)."""
     top = float(np.max(np.asarray(birth)[:-1] + np.asarray(death)[:-1], initial=0.0))
     top = max(top, float(np.asarray(death)[-1]))
     return not np.isfinite(top) or top * longest_interval > MAX_STEPS

@@ -17,12 +17,20 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from tallyfit.chain.errors import RateError
 from tallyfit.chain.uniformization import pair_log_likelihood_grad
 from tallyfit.infer.errors import LikelihoodUnderflowError
 
 from .windows import MAX_ROUNDS, TAIL_FLOOR, warm_margins
 
-__all__ = ["Groups", "Sweeps", "sweep_groups"]
+__all__ = ["Groups", "Sweeps", "sweep_groups", "MAX_STEPS", "MAX_STORE_BYTES", "check_cost"]
+
+#: Largest number of uniformization steps (total rate × interval) one sweep may need before
+#: the point is treated as impossible: a sampler's far-off trial point, not a plausible year.
+MAX_STEPS = 2e6
+#: Largest forward store one gradient sweep may keep (steps × window × 8 bytes); fixed, not
+#: the machine's free memory, so that which points are refused does not depend on the machine.
+MAX_STORE_BYTES = 2 * 1024 ** 3
 
 
 @dataclass
@@ -102,6 +110,38 @@ def _initial_margins(groups: Groups, b: np.ndarray, d: np.ndarray, N: int,
     return mlo, mhi, tail
 
 
+def check_cost(b: np.ndarray, d: np.ndarray, lo: np.ndarray, hi: np.ndarray, dt: np.ndarray,
+               birth_scale: np.ndarray, death_scale: np.ndarray, grad: bool) -> None:
+    """Refuse sweeps that would take more than MAX_STEPS steps or a gradient store over
+    MAX_STORE_BYTES (a far year of good and bad years, a rate scale far out in the tails).
+
+    Raises:
+        RateError: naming the steps or bytes (the guarded Op turns it into a refused point).
+    """
+    iota = float(b[0])
+
+    def steps(top_b: np.ndarray, top_d: np.ndarray, g: np.ndarray) -> np.ndarray:
+        return (iota + birth_scale[g] * np.maximum(top_b - iota, 0.0) + death_scale[g] * top_d) * dt[g]
+
+    def too_costly(lam: np.ndarray, g: np.ndarray) -> np.ndarray:
+        bad = ~np.isfinite(lam) | (lam > MAX_STEPS)
+        if grad:
+            bad |= (lam + 10 * np.sqrt(lam) + 20) * (hi[g] - lo[g] + 1) * 8 > MAX_STORE_BYTES
+        return bad
+
+    every = np.arange(lo.size)
+    # the whole range's largest rates first (cheap, and enough almost always); then each
+    # suspect sweep on its own window
+    lam = steps(np.full(lo.size, float(np.max(b[:-1], initial=0.0))), np.full(lo.size, float(np.max(d))), every)
+    for g in every[too_costly(lam, every)]:
+        top_b = float(np.max(b[lo[g]:max(min(hi[g], b.size - 2), lo[g]) + 1]))
+        one = steps(np.array([top_b]), np.array([float(np.max(d[lo[g]:hi[g] + 1]))]), np.array([g]))
+        if too_costly(one, np.array([g]))[0]:
+            raise RateError(f"a census interval would need {one[0]:.3g} uniformization steps on a window of "
+                            f"{hi[g] - lo[g] + 1} sizes (limits: {MAX_STEPS:.0e} steps, a gradient store of "
+                            f"{MAX_STORE_BYTES / 1024 ** 3:.0f} GiB)")
+
+
 def sweep_groups(groups: Groups, b: np.ndarray, d: np.ndarray, N: int, tol_pair: float,
                  grad: bool) -> Sweeps:
     """Windowed probabilities of every group's ends, each within ``tol_pair`` relatively.
@@ -142,6 +182,7 @@ def sweep_groups(groups: Groups, b: np.ndarray, d: np.ndarray, N: int, tol_pair:
         rounds += 1
         if rounds > MAX_ROUNDS:
             raise LikelihoodUnderflowError("window widening did not converge")
+        check_cost(b, d, lo[pending], hi[pending], groups.dt[pending], bs[pending], ds[pending], grad)
         if pending.size < G:
             cnt = ptr[pending + 1] - ptr[pending]
             eptr = np.zeros(pending.size + 1, dtype=np.int64)
