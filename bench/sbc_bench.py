@@ -1,4 +1,5 @@
-"""Simulation-based calibration of the fitter for the linear and logistic families.
+"""Simulation-based calibration of the fitter for the linear and logistic families, and for
+the logistic family with good and bad years ("logistic-env").
 
 Talts, Betancourt, Simpson, Vehtari & Gelman (2018), "Validating Bayesian inference
 algorithms with simulation-based calibration", arXiv:1804.06788: draw parameters θ from
@@ -15,13 +16,17 @@ The data are simulated from the same model that is fitted: one site counted at
 T + 1 yearly surveys from a fixed start size, the chain capped at the same size N as the
 fit (the cap reflects, in the simulation as in the likelihood, so a path that reaches
 it is still a draw from the fitted model), exact event-by-event paths
-(chain.BirthDeathChain.simulate).
+(chain.BirthDeathChain.simulate). With good and bad years each year draws its own
+ε ~ Normal(0, σ²) and the year is simulated with births λ_0 + (λ_n − λ_0)·exp(ε − σ²/2);
+the fit marginalises ε by quadrature, the simulation never does.
 Priors are fixed (not scaled to each data set) and given to the fit explicitly.
 
 Run:  .venv/bin/python bench/sbc_bench.py --replicates 100 --record sbc.jsonl   (long; resumable)
       .venv/bin/python bench/sbc_bench.py --draws 300 --tune 300 --record bench/results/sbc_300x2.jsonl
           (re-prints the table of the recorded 100 + 100 replicates without fitting again)
       .venv/bin/python bench/sbc_bench.py --replicates 8 --draws 200   (a quick look)
+      .venv/bin/python bench/sbc_bench.py --families logistic-env --draws 200 --tune 200 \
+          --record bench/results/sbc_env_200x2.jsonl
 """
 from __future__ import annotations
 
@@ -44,6 +49,7 @@ from scipy import stats  # noqa: E402
 from tallyfit.chain import BirthDeathChain  # noqa: E402
 from tallyfit.infer.counts import CountData  # noqa: E402
 from tallyfit.infer.families import Linear, Logistic  # noqa: E402
+from tallyfit.infer.model import Environment  # noqa: E402
 
 #: Fixed simulation design and priors per family.
 DESIGNS = {
@@ -57,7 +63,27 @@ DESIGNS = {
                 "death_rate": {"dist": "lognormal", "mu": math.log(0.25), "sigma": 0.35},
                 "carrying_capacity": {"dist": "lognormal", "mu": math.log(40.0),
                                       "sigma": 0.3}}),
+    # good and bad years on births; σ from the tool's default prior, halfnormal(0.5)
+    "logistic-env": dict(
+        family=Logistic(), start=15, years=15, cap=100, environment="births",
+        priors={"birth_rate": {"dist": "lognormal", "mu": math.log(0.8), "sigma": 0.35},
+                "death_rate": {"dist": "lognormal", "mu": math.log(0.25), "sigma": 0.35},
+                "carrying_capacity": {"dist": "lognormal", "mu": math.log(40.0), "sigma": 0.3},
+                "environment_sd": {"dist": "halfnormal", "sigma": 0.5}}),
 }
+
+
+def simulate_years(birth: np.ndarray, death: np.ndarray, sigma: float, start: int, years: int,
+                   rng: np.random.Generator) -> np.ndarray:
+    """Counts at 0..years: each year its own ε ~ N(0, σ²), births (not immigration) scaled by
+    exp(ε − σ²/2), an exact path through that year (chain.BirthDeathChain.simulate)."""
+    out = [start]
+    for _ in range(years):
+        eps = sigma * rng.standard_normal()
+        b = birth[0] + (birth - birth[0]) * math.exp(eps - sigma ** 2 / 2)
+        out.append(int(BirthDeathChain(b, death).simulate(out[-1], np.array([0.0, 1.0]),
+                                                          seed=int(rng.integers(2**31)))[0][-1]))
+    return np.array(out)
 
 
 def one_replicate(args: tuple) -> dict:
@@ -71,20 +97,27 @@ def one_replicate(args: tuple) -> dict:
     fam = design["family"]
     rng = np.random.default_rng(seed)
     # θ from the family's prior (restricted to its support, e.g. logistic b > d)
-    drawn = fam.draw_prior(fam.resolve_priors(design["priors"]), 1, rng)
-    theta = {k: float(drawn[k][0]) for k in design["priors"]}
+    varying = design.get("environment")
+    own = {k: v for k, v in design["priors"].items() if k != "environment_sd"}
+    drawn = fam.draw_prior(fam.resolve_priors(own), 1, rng)
+    theta = {k: float(drawn[k][0]) for k in own}
     sizes = np.arange(design["cap"] + 1)
     birth, death = fam.numpy_rates(theta, sizes)
     times = np.arange(design["years"] + 1, dtype=float)
-    path = BirthDeathChain(birth[0], death[0]).simulate(design["start"], times,
-                                                        seed=int(rng.integers(2**31)))[0]
+    if varying:
+        theta["environment_sd"] = float(abs(rng.normal(0.0, design["priors"]["environment_sd"]["sigma"])))
+        path = simulate_years(birth[0], death[0], theta["environment_sd"], design["start"], design["years"], rng)
+    else:
+        path = BirthDeathChain(birth[0], death[0]).simulate(design["start"], times,
+                                                            seed=int(rng.integers(2**31)))[0]
     data = CountData.single(times + 2000.0, path.astype(float))
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         r = fit_counts(data, fam, chains=2, draws=draws, tune=tune, cap=design["cap"],
                        priors=design["priors"], seed=int(rng.integers(2**31)),
-                       progressbar=False, cores=1, n_predictive=20, n_prior=20)
+                       progressbar=False, cores=1, n_predictive=20, n_prior=20,
+                       environment=Environment(varying=varying))
     out = {"task": list(args), "family": family_name, "rep": rep, "seconds": time.perf_counter() - t0,
            "passed": bool(r.passed),
            "divergences": int(r.idata.sample_stats["diverging"].sum()),

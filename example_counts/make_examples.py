@@ -104,8 +104,37 @@ def five_dunes(seed: int = 23) -> None:
     })
 
 
+def gorse_point(seed: int = 31) -> None:
+    """(d) A colony with good and bad years, and a change of management part-way through."""
+    truth = dict(birth_rate=0.7, death_rate=0.2, carrying_capacity=120.0, immigration=0.5)
+    sigma, rat_free_effect = 0.35, -0.36  # σ of log births per year; log factor on deaths once rat-free
+    rng = np.random.default_rng(seed)
+    years = np.arange(1991, 2026)
+    rat_free = (years >= 2009).astype(int)
+    birth, death = logistic_rates(**truth)
+    counts = [40]
+    for year, z in zip(years[:-1], rat_free[:-1]):
+        eps = sigma * rng.standard_normal()  # this year's conditions
+        b_year = np.exp(eps - sigma ** 2 / 2)
+        d_year = np.exp(rat_free_effect * z)
+        chain = BirthDeathChain(lambda n: truth["immigration"] + (birth(n) - truth["immigration"]) * b_year,
+                                lambda n: death(n) * d_year)
+        counts.append(int(chain.simulate(counts[-1], np.array([0.0, 1.0]), seed=rng)[0][1]))
+    pd.DataFrame({"time": years, "rat_free": rat_free}).to_csv(HERE / "gorse_point_covariates.csv", index=False)
+    _write("gorse_point", pd.DataFrame({"time": years, "count": counts}), {
+        "description": "Invented: breeding pairs of a burrow-nesting seabird at Gorse Point (a made-up "
+                       "headland), counted each July 1991-2025. Good and bad years move the whole colony's "
+                       "breeding success together; rats were cleared from the headland in 2009 "
+                       "(gorse_point_covariates.csv: rat_free = 1 from 2009).",
+        "family": "logistic", "time_unit": "year", "detection": 1.0, "seed": seed,
+        "true_rates": truth, "true_environment_sd": sigma, "environment_affects": "births",
+        "true_death_effect": {"rat_free": rat_free_effect},
+    })
+
+
 if __name__ == "__main__":
     heron_fen()
     copper_tarn()
     five_dunes()
+    gorse_point()
     print("wrote", ", ".join(sorted(p.name for p in HERE.glob("*.csv"))))

@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 __all__ = ["Limits", "LIMITS", "LIMIT_SOURCES", "Convergence", "diagnose", "parameter_table",
-           "pareto_k"]
+           "SpreadCheck", "spread_check", "pareto_k"]
 
 
 @dataclass(frozen=True)
@@ -194,6 +194,74 @@ def diagnose(idata: Any, var_names: Sequence[str], *, level: float = 0.9,
         failed.append("the sampler recorded no energy, so E-BFMI cannot be checked")
     return Convergence(table=table, level=level, divergences=divergences, bfmi=bfmi, limits=limits,
                        failed=failed)
+
+
+@dataclass(frozen=True)
+class SpreadCheck:
+    """A posterior predictive check aimed at year-to-year swings (overdispersion).
+
+    The statistic is the standard deviation of the one-step log changes of the counts,
+    log((n_{i+1} + ½)/(n_i + ½)) over every pair of consecutive surveyed times of every
+    site (the largest replicate count at each time; ½ keeps zeros finite), computed on the
+    observed counts and on each simulated series of the posterior predictive (Gelman,
+    Meng & Stern 1996, Statistica Sinica 6:733–807: a posterior predictive p-value; from
+    memory). Counts that swing more than the model's own simulations do give a small
+    p-value: the model lacks year-to-year (environmental) variation.
+
+    Attributes:
+        observed: the statistic on the counts.
+        predicted: its posterior predictive median, and 5% and 95% quantiles.
+        p_value: share of simulated series whose statistic is at least the observed one.
+        n_series: simulated series used.
+    """
+
+    observed: float
+    predicted: tuple[float, float, float]
+    p_value: float
+    n_series: int
+
+    @property
+    def too_calm(self) -> bool:
+        """True when the model's simulations swing clearly less than the counts (p < 0.05)."""
+        return self.p_value < 0.05
+
+
+def _log_change_sd(values: np.ndarray, site: np.ndarray, time: np.ndarray) -> np.ndarray:
+    """SD of the one-step log changes; ``values`` (n_series, n_cells) with cells' site and time."""
+    changes = []
+    for s in np.unique(site):
+        sel = site == s
+        times = np.unique(time[sel])
+        # the largest replicate at each time (the minimum number known alive)
+        per_time = np.stack([np.max(values[:, sel & (time == t)], axis=1) for t in times], axis=1)
+        changes.append(np.diff(np.log(per_time + 0.5), axis=1))
+    return np.std(np.concatenate(changes, axis=1), axis=1, ddof=1)
+
+
+def spread_check(idata: Any) -> SpreadCheck:
+    """The posterior predictive check of year-to-year swings (see :class:`SpreadCheck`).
+
+    Args:
+        idata: InferenceData with observed_data and posterior_predictive over count cells
+            (variable ``counts`` over ``count_cell`` with ``cell_site`` and ``cell_time``).
+
+    Returns:
+        SpreadCheck.
+
+    Raises:
+        ValueError: the groups are missing, or there are fewer than two changes.
+    """
+    if "observed_data" not in idata.groups() or "posterior_predictive" not in idata.groups():
+        raise ValueError("posterior.nc has no observed_data or posterior_predictive group")
+    obs = idata.observed_data["counts"]
+    pred = idata.posterior_predictive["counts"]
+    site = np.asarray([str(v) for v in obs["cell_site"].values])
+    time = np.asarray(obs["cell_time"].values, dtype=float)
+    t_obs = float(_log_change_sd(np.asarray(obs.values, dtype=float)[None, :], site, time)[0])
+    sims = np.asarray(pred.transpose("chain", "draw", "count_cell").values, dtype=float)
+    t_rep = _log_change_sd(sims.reshape(-1, sims.shape[-1]), site, time)
+    return SpreadCheck(observed=t_obs, predicted=tuple(float(q) for q in np.quantile(t_rep, [0.5, 0.05, 0.95])),
+                       p_value=float(np.mean(t_rep >= t_obs)), n_series=int(t_rep.size))
 
 
 def pareto_k(idata: Any) -> np.ndarray:

@@ -38,8 +38,8 @@ from .html import (Cell, esc, figure, format_interval, format_number, format_poi
 from .narrative import caution_text, category_line, extinction_line, long_run_line, trend_lines
 from .predictive import predictive_bands
 from .review import diagnostics_section
-from .tables import (category_table, extinction_table, flatten_settings, scenario_differences, scenario_settings,
-                     site_data_table, trend_table)
+from .tables import (category_table, covariate_effects, environment_share, extinction_table, flatten_settings,
+                     scenario_differences, scenario_settings, site_data_table, trend_table)
 
 __all__ = ["build_report", "FIGURE_NAMES"]
 
@@ -141,6 +141,18 @@ class _Report:
                          "line: their median. Counts that "
                          "often fall outside the 90% band point to a model that does not fit.")
         body += notice("Posterior predictive bands missing", pp.notes, "warn")
+        sc = self.audit.spread
+        if sc is not None:
+            verdict = ("The counts swing more from one census to the next than the model's own simulations do: "
+                       "the model lacks good and bad years, so its extinction risks are likely too low or too "
+                       "confident. Refit with good and bad years (--varying-years births) and compare."
+                       if sc.too_calm else "The model's simulations swing from one census to the next as much as "
+                                           "the counts do.")
+            body += (f"<p>Year-to-year swings: the standard deviation of the one-step log changes of the counts is "
+                     f"{esc(format_number(sc.observed, 3))}; the model's simulated series give "
+                     f"{esc(format_number(sc.predicted[0], 3))} (90% {esc(format_number(sc.predicted[1], 3))} to "
+                     f"{esc(format_number(sc.predicted[2], 3))}; posterior predictive p = "
+                     f"{esc(format_number(sc.p_value, 2))}). {esc(verdict)}</p>")
         data = rf.summary_section("data")
         settings = rf.run["settings"] if rf.run is not None else rf.summary_section("settings")
         body += "<h3>Assumptions</h3><p>The results depend on these settings (rate family, priors, observation model, " \
@@ -188,6 +200,7 @@ class _Report:
                      f"{esc(format_interval(float(iota.lo), float(iota.hi)))}.</p>")
         else:
             body += "<p>No immigration in this model: size 0 is absorbing.</p>"
+        body += self.environment_part()
         params = rf.summary_section("parameters")
         if params is not None:
             pt, where = pd.DataFrame.from_dict(params, orient="index"), "summary.json"
@@ -202,6 +215,44 @@ class _Report:
             body += frame_table(pt.apply(pd.to_numeric), cols, index="parameter",
                                 caption=f"Posterior summary of the parameters ({where}).")
         return section("rates", "3. Birth and death rates", body)
+
+    def environment_part(self) -> str:
+        """Good and bad years (σ, the environmental share of the variance) and covariate effects."""
+        rf, post, lv = self.rf, self.rf.idata.posterior, self.level
+        varying = (rf.summary_section("environment") or {}).get("varying_years", "none")
+        out = ""
+        if "environment_sd" in post and varying in ("births", "births_and_deaths"):
+            sd = band(post["environment_sd"], lv)
+            moved = "per-capita births" if varying == "births" else "per-capita births (and, inversely, deaths)"
+            out += (f"<h3>Good and bad years</h3><p>Each census interval draws its own conditions, which move every "
+                    f"animal's {moved} together. Their year-to-year standard deviation on the log scale is σ = "
+                    f"{esc(format_number(float(sd.median)))} ({self.pct} interval "
+                    f"{esc(format_interval(float(sd.lo), float(sd.hi)))}); a good year one σ above the average "
+                    f"multiplies births by about {esc(format_number(math.exp(float(sd.median))))}.")
+            if rf.counts is not None and rf.counts["count"].notna().any():
+                c = int(max(1, round(float(rf.counts["count"].dropna().astype(float).median()))))
+                c = min(c, rf.cap)
+                share = band(environment_share(post, self.derived, self.base, c, varying), lv)
+                out += (f" At the median count ({c}) the environment makes up "
+                        f"{esc(format_probability(float(share.median)))} ({self.pct} interval "
+                        f"{esc(format_interval(float(share.lo), float(share.hi), format_probability))}) of the "
+                        "variance of one year's log growth; the rest is the chance of births and deaths "
+                        "themselves (Lande, Engen &amp; Sæther 2003).")
+            out += (" The extinction and quasi-extinction probabilities, the criterion E categories, the mean "
+                    "times to extinction and the size distributions below all come from the annual chain that "
+                    "draws a new year each time unit, so they depend on σ: the wider the swings, the likelier a "
+                    "run of bad years.</p>")
+        effects = covariate_effects(post, lv)
+        if not effects.empty:
+            rows = [[r.rate, r.covariate, Cell(format_number(r.ratio, 3), "num"),
+                     Cell(format_interval(r.lo, r.hi), "num"), Cell(format_probability(r.p_above_1), "num")]
+                    for r in effects.itertuples(index=False)]
+            out += table(["rate", "covariate", "factor per unit (median)", f"{self.pct} interval",
+                          "P(factor > 1)"], rows,
+                         caption="Known conditions: each per-capita rate is multiplied by this factor for every unit "
+                                 "of the covariate (for a 0/1 covariate: the rate when it is 1 over the rate when it "
+                                 "is 0). Forecasts use the future values stated in the settings.")
+        return out
 
     # ---- 4. distributions ------------------------------------------------------------
     def distributions_section(self) -> str:

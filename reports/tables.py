@@ -17,7 +17,7 @@ from .bands import SAMPLE_DIMS, band
 
 __all__ = ["category_table", "extinction_table", "trend_table",
            "scenario_settings", "scenario_differences", "prior_posterior_table",
-           "site_data_table", "flatten_settings"]
+           "site_data_table", "flatten_settings", "environment_share", "covariate_effects"]
 
 
 def category_table(derived: xr.Dataset, names: list[str]) -> pd.DataFrame:
@@ -276,3 +276,60 @@ def flatten_settings(settings: Any, prefix: str = "") -> list[tuple[str, str]]:
             rows += flatten_settings(v, f"{prefix}[{i}]")
         return rows
     return [(prefix, str(settings))]
+
+
+def environment_share(posterior: xr.Dataset, derived: xr.Dataset, scenario: str, size: int,
+                      varying: str) -> xr.DataArray:
+    """Share of the variance of one year's log growth at ``size`` that is environmental, per draw.
+
+    In the diffusion approximation of count-based viability analysis (Lande, Engen &
+    Sæther 2003, Stochastic Population Dynamics in Ecology and Conservation, ch. 1;
+    Dennis, Munholland & Scott 1991) the variance of log growth per time unit at size n is
+    the demographic variance (b(n) + d(n))/n plus the environmental variance. Here the
+    year's factor is exp(ε − σ²/2) on births (and exp(−ε − σ²/2) on deaths with
+    "births_and_deaths"), so the environmental variance of the net per-capita rate is
+    b²(e^{σ²} − 1), plus d²(e^{σ²} − 1) − 2bd(e^{−σ²} − 1) when deaths move too.
+
+    Args:
+        posterior: the posterior group (with ``environment_sd``).
+        derived: the push-forward Dataset (per-capita rates by size).
+        scenario: scenario name.
+        size: the size n.
+        varying: "births" or "births_and_deaths".
+
+    Returns:
+        DataArray over (chain, draw) of the environmental share (0..1).
+    """
+    d = derived.sel(scenario=scenario, size=size)
+    b, m = d["birth_per_capita"], d["death_per_capita"]
+    # the push-forward may use a thinned subset of the draws: match them by chain and draw
+    s2 = (posterior["environment_sd"] ** 2).sel(chain=b["chain"].values, draw=b["draw"].values)
+    env = b ** 2 * np.expm1(s2)
+    if varying == "births_and_deaths":
+        env = env + m ** 2 * np.expm1(s2) - 2 * b * m * np.expm1(-s2)
+    dem = (b + m) / max(size, 1)
+    return env / (env + dem)
+
+
+def covariate_effects(posterior: xr.Dataset, level: float = 0.9) -> pd.DataFrame:
+    """Each covariate's effect as a rate ratio: exp(β) per unit of the covariate.
+
+    Args:
+        posterior: the posterior group (``birth_effect`` over ``birth_covariate``,
+            ``death_effect`` over ``death_covariate``, when the fit had covariates).
+        level: credible level.
+
+    Returns:
+        DataFrame with columns rate ("births" or "deaths"), covariate, ratio (posterior
+        median of exp(β)), lo, hi, and p_above_1 (posterior probability that the ratio
+        exceeds 1); empty without covariates.
+    """
+    rows = []
+    for rate, var, dim in (("births", "birth_effect", "birth_covariate"), ("deaths", "death_effect", "death_covariate")):
+        if var not in posterior:
+            continue
+        for name in posterior[dim].values:
+            ratio = np.exp(posterior[var].sel({dim: name}))
+            b = band(ratio, level)
+            rows.append((rate, str(name), float(b.median), float(b.lo), float(b.hi), float((ratio > 1).mean())))
+    return pd.DataFrame(rows, columns=["rate", "covariate", "ratio", "lo", "hi", "p_above_1"])

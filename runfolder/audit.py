@@ -10,7 +10,10 @@ problem is listed once and names both sources. Checks:
 * R-hat, bulk ESS, tail ESS, divergent transitions and E-BFMI recomputed from
   posterior.nc, against summary.json's recorded verdict;
 * PSIS-LOO Pareto k (a warning: it speaks of model comparison, not of the posterior);
-* the fit's cap check, as recorded (it needs the model, which a run folder does not hold);
+* year-to-year swings of the counts against the posterior predictive (a warning: a
+  model without good and bad years that cannot swing as much as the counts);
+* the fit's cap check and, with good and bad years, its quadrature check, as recorded
+  (they need the model, which a run folder does not hold);
 * the push-forward's numerical bounds in derived.nc.
 """
 from __future__ import annotations
@@ -22,7 +25,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from tallyfit.infer.diagnostics import LIMITS, Convergence, Limits, diagnose, pareto_k
+from tallyfit.infer.diagnostics import LIMITS, Convergence, Limits, SpreadCheck, diagnose, pareto_k, spread_check
 
 from . import schema as S
 from .reader import RunFolder, RunFolderError, open_run, read_run_toml
@@ -62,12 +65,14 @@ class Audit:
         convergence: the recomputed diagnostics (None when posterior.nc could not be judged).
         pareto_k: one Pareto k per observation (empty when LOO could not be computed).
         limits: the limits applied.
+        spread: the posterior predictive check of year-to-year swings (None when not computed).
     """
 
     checks: list[Check] = field(default_factory=list)
     convergence: Convergence | None = None
     pareto_k: np.ndarray = field(default_factory=lambda: np.zeros(0))
     limits: Limits = LIMITS
+    spread: SpreadCheck | None = None
 
     @property
     def failed(self) -> list[Check]:
@@ -177,12 +182,36 @@ def _loo_check(rf: RunFolder, limits: Limits) -> tuple[Check, np.ndarray]:
                  blocking=False), k
 
 
+def _spread_check(rf: RunFolder) -> tuple[Check, SpreadCheck | None]:
+    name = "year-to-year swings (posterior predictive)"
+    try:
+        sc = spread_check(rf.idata)
+    except (ValueError, KeyError) as exc:
+        return Check(name, None, f"not computed ({exc})", _POSTERIOR, blocking=False), None
+    detail = (f"SD of one-step log changes: counts {sc.observed:.3g}, simulated {sc.predicted[0]:.3g} "
+              f"(90% {sc.predicted[1]:.3g} to {sc.predicted[2]:.3g}); p = {sc.p_value:.3f}")
+    if sc.too_calm:
+        detail += ("; the counts swing more from one census to the next than the model allows: good and bad "
+                   "years (--varying-years births) may fit better")
+    return Check(name, not sc.too_calm, detail, _POSTERIOR, blocking=False), sc
+
+
 def _cap_check(rf: RunFolder) -> Check:
     src = "recorded in summary.json (the fit's own check)"
     cap = rf.summary_section("cap_check")
     if cap is None:
         return Check("cap check", None, "summary.json is not available", src)
     return Check("cap check", bool(cap["ok"]), str(cap["message"]), src)
+
+
+def _quadrature_check(rf: RunFolder) -> Check | None:
+    """The fit's own measurement of the quadrature over good and bad years, as recorded."""
+    env = rf.summary_section("environment")
+    quad = None if env is None else env.get("quadrature_check")
+    if quad is None:
+        return None
+    return Check("quadrature over good and bad years", bool(quad["ok"]), str(quad["message"]),
+                 "recorded in summary.json (the fit's own check)")
 
 
 def _worst(da: xr.DataArray, mask: xr.DataArray | None = None) -> tuple[float, str | None]:
@@ -268,7 +297,12 @@ def audit_folder(rf: RunFolder, limits: Limits = LIMITS, *, report_written: bool
     audit.checks += conv_checks
     loo, audit.pareto_k = _loo_check(rf, limits)
     audit.checks.append(loo)
+    spread, audit.spread = _spread_check(rf)
+    audit.checks.append(spread)
     audit.checks.append(_cap_check(rf))
+    quad = _quadrature_check(rf)
+    if quad is not None:
+        audit.checks.append(quad)
     audit.checks += derived_checks(rf.derived, rf.cap, limits)
     if rf.notes:
         audit.checks.append(Check("files readable", False, "; ".join(rf.notes), "the run folder"))

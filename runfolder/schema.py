@@ -45,7 +45,7 @@ CAUTION = ("Results are model-based: they depend on the counts supplied and on t
            "qualified review.")
 
 #: Bumped when a file's layout changes incompatibly; recorded in summary.json.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3  # 3: the "environment" section (good and bad years, covariates)
 
 #: Files every complete run folder holds.
 RUN_FILES: tuple[str, ...] = ("posterior.nc", "derived.nc", "summary.csv", "summary.json", "report.html",
@@ -68,6 +68,7 @@ SUMMARY_SECTIONS: dict[str, str] = {
     "derived": "credible_level and {scenario: push-forward summaries}",
     "diagnostics": "passed, failed (phrases), limits, divergences (per chain), bfmi (per chain)",
     "cap_check": "ok, message and the measurements behind them",
+    "environment": "varying_years, covariates (births, deaths, future values), quadrature_check (or null)",
     "warnings": "sentences the user must read",
 }
 #: Columns of every parameter entry in summary.json (and the parameter rows of summary.csv).

@@ -54,6 +54,8 @@ class RunRecord:
         starts: {site: start size of the forecasts}.
         seed: the run's seed.
         warnings: sentences the user must read.
+        environment: good and bad years and covariates: varying_years, covariates
+            (births, deaths, future) and the fit's quadrature check (None without).
     """
 
     counts_bytes: bytes
@@ -73,6 +75,8 @@ class RunRecord:
     starts: Mapping[str, int]
     seed: int
     warnings: list[str] = field(default_factory=list)
+    environment: Mapping[str, Any] = field(default_factory=lambda: {"varying_years": "none", "covariates": {},
+                                                                   "quadrature_check": None})
 
 
 def package_versions() -> dict[str, str]:
@@ -107,7 +111,8 @@ def summary_document(record: RunRecord) -> dict[str, Any]:
            "family": dict(record.family), "settings": dict(record.settings), "cap": int(record.cap),
            "starts": {str(k): int(v) for k, v in record.starts.items()}, "parameters": parameters,
            "derived": dict(record.derived_summary), "diagnostics": _diagnostics_record(record.convergence),
-           "cap_check": dict(record.cap_check), "warnings": list(record.warnings)}
+           "cap_check": dict(record.cap_check), "environment": dict(record.environment),
+           "warnings": list(record.warnings)}
     assert set(doc) == set(S.SUMMARY_SECTIONS), "summary_document and the schema disagree"
     return json_value(doc)
 

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import re
 import traceback
-from dataclasses import replace
 from pathlib import Path
 from typing import Any, Callable
 
@@ -53,8 +52,10 @@ def _run_site(site: str, table: pd.DataFrame, settings: RunSettings, folder: str
                    iucn_most_probable=max(iucn, key=iucn.get) if iucn else None)
     except InputError as exc:
         row.update(status="failed", detail=f"bad input: {exc}")
-    except Exception as exc:  # one site's trouble must not stop the others
-        row.update(status="failed", detail=f"{type(exc).__name__}: {exc} | "
+    except OSError as exc:
+        row.update(status="failed", detail=f"cannot write the run folder: {exc}")
+    except Exception as exc:  # one site's trouble must not stop the others; a fault in tallyfit itself
+        row.update(status="failed", detail=f"internal error (please report): {type(exc).__name__}: {exc} | "
                    + traceback.format_exc(limit=3).replace("\n", " "))
     return row
 
@@ -115,9 +116,8 @@ def run_batch(counts: str | Path, settings: RunSettings, out: str | Path, *, by:
         else:
             client = Client(scheduler)
         try:
-            per_site = replace(settings, chains=settings.chains)
             futures = {client.submit(_run_site, site, table[table["site"] == site].reset_index(drop=True),
-                                     per_site, str(folders[site]), key=f"tallyfit-site-{i}", pure=False): site
+                                     settings, str(folders[site]), key=f"tallyfit-site-{i}", pure=False): site
                        for i, site in enumerate(todo)}
             for fut in as_completed(futures):
                 site = futures[fut]

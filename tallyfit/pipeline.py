@@ -15,6 +15,7 @@ import numpy as np
 
 from tallyfit.infer.counts import CountData
 from tallyfit.infer.criterion_e import criterion_e_horizons, horizons_with_criterion_e
+from tallyfit.infer.errors import InputError
 from tallyfit.infer.families import get_family
 from tallyfit.infer.fit import FitResult, fit_counts
 from tallyfit.infer.model import Environment
@@ -112,6 +113,12 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     data = counts if isinstance(counts, CountData) else load_counts(counts)
     family = get_family(settings.rates, immigration=settings.immigration)
     environment = environment_of(settings)
+    horizons = horizons_with_criterion_e(settings.horizons, settings.generation_time)
+    if environment.varying and any(h != round(h) for h in horizons):
+        raise InputError(f"with good and bad years the forecasts step one time unit at a time, so every horizon "
+                         f"must be a whole number of time units; got {', '.join(f'{h:g}' for h in horizons)}",
+                         source="derive.horizons",
+                         hint="use whole horizons, and a generation time whose 3 and 5 generations are whole")
     log(f"fitting the {family.name} family to {data.n_counts} counts at {len(data.sites)} site(s) "
         f"from {data.source} ({settings.chains} chains × {settings.draws} draws)")
     with warnings.catch_warnings(record=True) as caught:
@@ -129,7 +136,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         float(result.detection) if isinstance(result.detection, float) else 1.0)
     starts = start_sizes(data, p_mean)
     spec = PushForwardSpec(cap=int(result.cap), sites=tuple(starts), starts=tuple(starts.values()),
-                           horizons=horizons_with_criterion_e(settings.horizons, settings.generation_time),
+                           horizons=horizons,
                            thresholds=tuple(settings.thresholds), generation_time=settings.generation_time,
                            varying=environment.varying, birth_covariates=environment.births,
                            death_covariates=environment.deaths,
@@ -159,7 +166,11 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         family={"name": result.family.name, "formula": result.family.formula,
                 "description": result.family.describe(result.model.priors if result.model else None)},
         settings={**settings.as_dict(), "cap": int(result.cap), "cap_rule": result.settings["cap_rule"]},
-        starts=starts, seed=settings.seed, warnings=warn)
+        starts=starts, seed=settings.seed, warnings=warn,
+        environment={"varying_years": settings.varying_years,
+                     "covariates": {"births": list(environment.births), "deaths": list(environment.deaths),
+                                    "future": dict(settings.future_covariates)},
+                     "quadrature_check": result.quadrature_check})
     folder = write_run(out, record, report=build_report)
     base = derived_summary["baseline"]
     headline = {"extinction": {h: st["mean"] for h, st in base["extinction_probability_all_sites"]["threshold=0"].items()}
