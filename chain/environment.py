@@ -14,7 +14,7 @@ the years. The quadrature error is estimated on request with the (2K+1)-node rul
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -24,6 +24,7 @@ from .environment_kernels import (POISSON_TAIL, UNIT, AnnualMatrix, build_annual
 from .birth_death import BirthDeathChain
 from .errors import ChainError, RateError
 from .memory import require_memory
+from .passage import PassageCurve
 from .rates import check_rate_arrays
 
 #: Caps up to this use the whole range; above it the window top is chosen and widened.
@@ -54,21 +55,11 @@ class AnnualCurves:
 
 
 @dataclass(frozen=True)
-class AnnualCurve:
-    """One curve, with the attribute names of chain.passage.PassageCurve (``times`` in years)."""
+class AnnualCurve(PassageCurve):
+    """One curve of the annual chain: a chain.passage.PassageCurve (``times`` in years) that
+    also carries ``quadrature_error`` (|K-node − (2K+1)-node|, nan unless asked for)."""
 
-    times: np.ndarray
-    probability: np.ndarray
-    error_bound: np.ndarray
-    quadrature_error: np.ndarray
-    start: int
-    threshold: int
-
-    def __array__(self, dtype=None, copy=None):
-        return np.asarray(self.probability, dtype=dtype)
-
-    def __len__(self) -> int:
-        return self.probability.size
+    quadrature_error: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
 
 @dataclass(frozen=True)
@@ -324,8 +315,8 @@ class EnvironmentalChain:
             ChainError: bad start, years or threshold.
         """
         c = self.extinction_curves([start], years, [threshold], tol=tol, quadrature_error=quadrature_error)
-        return AnnualCurve(c.years.astype(float), c.probability[0, 0], c.error_bound[0, 0],
-                           c.quadrature_error[0, 0], int(c.starts[0]), int(c.thresholds[0]))
+        return AnnualCurve(c.years.astype(float), c.probability[0, 0], c.error_bound[0, 0], int(c.starts[0]),
+                           int(c.thresholds[0]), quadrature_error=c.quadrature_error[0, 0])
 
     def _quad_nodes(self) -> int:
         return 2 * self._nodes + 1 if self._sigma > 0 else 1

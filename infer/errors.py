@@ -124,3 +124,18 @@ class LikelihoodUnderflowError(InputError):
         self.end = end
         super().__init__(message, hint="check the rates (a far-off parameter value) or the counts "
                                        "(a typing error); a detection model absorbs counting error")
+
+
+class SamplerError(RuntimeError):
+    """The sampler failed for a reason that is not in the user's data or settings: an internal
+    error (the command line exits with status 3), reported in plain words, never a traceback.
+
+    Attributes:
+        cause: the underlying error's type and the first line of its message.
+        hint: what may get the run through meanwhile.
+    """
+
+    def __init__(self, message: str, *, cause: str = "", hint: str | None = None) -> None:
+        self.cause = cause
+        self.hint = hint
+        super().__init__(message + (f" — {hint}" if hint else ""))

@@ -40,7 +40,8 @@ from tallyfit.infer.errors import InputError
 from tallyfit.infer.families import RateFamily, get_family
 from tallyfit.infer.model import NO_ENVIRONMENT, CountModel, Environment, build_count_model
 from tallyfit.infer.predictive import observed_data_group, simulate_posterior_counts
-from tallyfit.infer.sampling import sample_model, sample_prior, seed_streams
+from tallyfit.infer.sampling import DEFAULT_INIT, sample_model, sample_prior, seed_streams
+from tallyfit.infer.start import find_start
 
 __all__ = ["CapWarning", "ConvergenceWarning", "FitResult", "fit_counts", "compare_families"]
 
@@ -153,8 +154,10 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         FitResult.
 
     Raises:
-        InputError: data that are not CountData, a bad family, settings or priors (before
-            any sampling).
+        InputError: data that are not CountData, a bad family, settings or priors, or no
+            starting point where the model's log density is finite (all before any
+            sampling); a sampler that cannot start or runs out of memory.
+        SamplerError: any other failure inside the sampler (an internal error), in plain words.
     """
     for name, value, least in (("chains", chains, 1), ("draws", draws, 1), ("tune", tune, 0),
                                ("n_predictive", n_predictive, 1), ("n_prior", n_prior, 1)):
@@ -187,9 +190,15 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
     prior = sample_prior(cm, n_prior, prior_seed)
     timing["prior"] = time.perf_counter() - t0
 
+    # a checked, finite start from the counts before any sampling: an impossible one stops here
+    t0 = time.perf_counter()
+    start = find_start(cm, chains=chains, seed=sample_seed)
+    timing["start"] = time.perf_counter() - t0
+
     t0 = time.perf_counter()
     idata = sample_model(cm, chains=chains, draws=draws, tune=tune, seed=sample_seed,
-                         progressbar=progressbar, cores=cores, target_accept=target_accept)
+                         progressbar=progressbar, cores=cores, target_accept=target_accept,
+                         init=DEFAULT_INIT, initvals=start.chain_points)
     timing["sampling"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
@@ -231,7 +240,7 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         "detection": cm.detection, "priors": cm.priors, "pooling": cm.pooling,
         "varying_years": environment.varying or "none", "birth_covariates": list(environment.births),
         "death_covariates": list(environment.deaths),
-        "target_accept": float(target_accept), "init": "jitter+adapt_full",
+        "target_accept": float(target_accept), "init": DEFAULT_INIT, "start": start.summary(),
         "n_predictive": int(predictive.sizes["chain"] * predictive.sizes["draw"]),
         "n_prior": int(n_prior),
         "data_scale": {"time_scale": cm.scale.time_scale, "count_scale": cm.scale.count_scale,

@@ -4,7 +4,9 @@ For each draw and scenario: per-capita birth and death rates by size; the statio
 distribution where one exists (decided on the family's formula continued beyond the cap)
 and the probability mass it puts above the cap; the quasi-stationary distribution and
 its decay rate; the mean time to extinction from each site's last count; extinction and
-quasi-extinction curves over the horizons; and the IUCN criterion E category.
+quasi-extinction curves over the horizons; and the IUCN criterion E category. Besides the
+per-draw quantities, the forecast of the next censuses (:mod:`.forecast`): the predictive
+distribution of the size at each of the next few census times, per scenario and site.
 
 With partial pooling (a ``site_offset`` in the posterior) each site has its own rates:
 the quantities indexed by site (mean time to extinction, extinction curves) use that
@@ -28,6 +30,7 @@ import xarray as xr
 
 from tallyfit.chain import BirthDeathChain, ChainError
 from tallyfit.infer.criterion_e import CATEGORIES, criterion_e_category, criterion_e_horizons
+from tallyfit.infer.forecast import FORECAST_QUANTILES, forecast_rows, pmf_quantiles
 from tallyfit.infer.scenarios import BASELINE, Scenario
 
 #: Key of a draw's per-site parameters under partial pooling (a list in the order of spec.sites).
@@ -48,6 +51,9 @@ class PushForwardSpec:
             ``environment_sd`` drives the annual chain (horizons must be whole time units).
         birth_covariates, death_covariates: the covariates the fit used.
         future_covariates: their values in the forecasts (a scenario may replace some).
+        forecast_steps: how many future censuses the forecast covers (0: none).
+        forecast_interval: the census interval of the forecast, in time units.
+        forecast_from: each site's last census time (in site order).
     """
 
     cap: int
@@ -61,6 +67,9 @@ class PushForwardSpec:
     birth_covariates: tuple[str, ...] = ()
     death_covariates: tuple[str, ...] = ()
     future_covariates: Mapping[str, float] = field(default_factory=dict)
+    forecast_steps: int = 0
+    forecast_interval: float = 1.0
+    forecast_from: tuple[float, ...] = ()
 
     @property
     def affects(self) -> str:
@@ -106,14 +115,8 @@ def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec,
     starts = spec.starts if starts is None else starts
     if sigma > 0:
         return _one_annual_draw(birth, death, spec, starts, sigma)
-    out: dict[str, Any] = {}
     chain = BirthDeathChain(birth, death)
-    try:
-        qs = chain.quasi_stationary()
-        out["quasi_pmf"], out["quasi_decay_rate"], out["quasi_mean"] = qs.pmf, qs.decay_rate, qs.mean
-    except ChainError:
-        out["quasi_pmf"] = np.full(spec.cap + 1, np.nan)
-        out["quasi_decay_rate"] = out["quasi_mean"] = np.nan
+    out: dict[str, Any] = _quasi(chain, spec.cap)
     out["log10_mean_time"] = np.zeros(0)
     if len(starts):
         with np.errstate(over="ignore"):
@@ -138,6 +141,15 @@ def _one_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec,
     return out
 
 
+def _quasi(chain: Any, cap: int) -> dict[str, Any]:
+    """The quasi-stationary law, decay rate and mean of a chain (NaN where it has none)."""
+    try:
+        qs = chain.quasi_stationary()
+        return {"quasi_pmf": qs.pmf, "quasi_decay_rate": qs.decay_rate, "quasi_mean": qs.mean}
+    except ChainError:
+        return {"quasi_pmf": np.full(cap + 1, np.nan), "quasi_decay_rate": np.nan, "quasi_mean": np.nan}
+
+
 def _one_annual_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec, starts: Sequence[int],
                      sigma: float) -> dict[str, Any]:
     """The annual chain's quantities (good and bad years, chain.environment), from ``starts``."""
@@ -146,13 +158,7 @@ def _one_annual_draw(birth: np.ndarray, death: np.ndarray, spec: PushForwardSpec
     b0 = birth.copy()
     b0[0] = 0.0  # extinction: 0 absorbing
     closed = EnvironmentalChain(b0, death, sigma, affects=spec.affects)
-    out: dict[str, Any] = {}
-    try:
-        qs = closed.quasi_stationary()
-        out["quasi_pmf"], out["quasi_decay_rate"], out["quasi_mean"] = qs.pmf, qs.decay_rate, qs.mean
-    except ChainError:
-        out["quasi_pmf"] = np.full(spec.cap + 1, np.nan)
-        out["quasi_decay_rate"] = out["quasi_mean"] = np.nan
+    out: dict[str, Any] = _quasi(closed, spec.cap)
     out["log10_mean_time"] = np.zeros(0)
     years = np.asarray(spec.horizons, dtype=float)
     shape = (len(starts), len(spec.thresholds), years.size)
@@ -341,7 +347,69 @@ def push_forward(family: Any, posterior: xr.Dataset, spec: PushForwardSpec,
     p = {k: ext.interp(horizon=v).values if v not in spec.horizons else ext.sel(horizon=v).values
          for k, v in hz.items()}
     ds["iucn_category"] = (dims_s, criterion_e_category(p["CR"], p["EN"], p["VU"]))
+    if spec.forecast_steps:
+        ds = ds.assign(_forecast(family, params, scenarios, spec)).assign_coords(
+            step=np.arange(1, spec.forecast_steps + 1))
     return ds
+
+
+#: Draws the forecast averages over at most (evenly spread): a mixture's quantiles settle
+#: long before this; an annual matrix (good and bad years) costs far more than a row.
+FORECAST_DRAWS, FORECAST_DRAWS_ANNUAL = 1000, 200
+
+
+def _forecast(family: Any, params: Sequence[Mapping[str, Any]], scenarios: Sequence[Scenario],
+              spec: PushForwardSpec) -> dict[str, tuple[tuple[str, ...], np.ndarray]]:
+    """The next censuses' predictive distribution per scenario and site: each draw's rows of
+    P(k·Δ) from the site's last count (the annual chain's with good and bad years), averaged."""
+    from tallyfit.chain.environment import EnvironmentalChain
+
+    n = len(params)
+    idx = np.unique(np.round(np.linspace(0, n - 1, min(n, FORECAST_DRAWS_ANNUAL if spec.varying else FORECAST_DRAWS)))
+                    .astype(int))
+    sizes = np.arange(spec.cap + 1)
+    starts = np.asarray(spec.starts, dtype=np.int64)
+    out = np.zeros((len(scenarios), starts.size, spec.forecast_steps, spec.cap + 1))
+    used = np.zeros((len(scenarios), starts.size))
+    for i, scenario in enumerate(scenarios):
+        for j in idx:
+            shared = {k: v for k, v in params[j].items() if k != _SITE_PARAMS}
+            sigma, transform = _conditions(shared, scenario, spec)
+            own = params[j].get(_SITE_PARAMS)
+            parts = [(own[s], [s]) for s in range(starts.size)] if own is not None else [(shared, list(range(starts.size)))]
+            for p, which in parts:
+                b, d = family.numpy_rates(p, sizes)
+                b, d = transform(b[0], d[0], sizes)
+                try:
+                    annual = EnvironmentalChain(b, d, sigma, affects=spec.affects) if sigma > 0 else None
+                    out[i, which] += forecast_rows(b, d, starts[which], spec.forecast_steps, spec.forecast_interval,
+                                                   annual)
+                except ChainError:  # rates a solver refuses: this draw is left out of the average
+                    continue
+                used[i, which] += 1
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out /= used[:, :, None, None]
+    times = np.asarray(spec.forecast_from, dtype=float)[:, None] + spec.forecast_interval * np.arange(
+        1, spec.forecast_steps + 1)
+    return {"forecast_pmf": (("scenario", "site", "step", "size"), out), "forecast_time": (("site", "step"), times)}
+
+
+def _forecast_summary(d: xr.Dataset) -> dict[str, list[dict[str, float | None]]]:
+    """{site: one entry per future census (time, mean, q05, q25, q50, q75, q95)} of one scenario
+    (None where no draw could be forecast)."""
+    pmf = d["forecast_pmf"].transpose("site", "step", "size").values
+    mean = (pmf * d["size"].values).sum(axis=-1)
+    out = {}
+    for a, site in enumerate(d["site"].values):
+        rows = []
+        for k in range(pmf.shape[1]):
+            ok = bool(np.isfinite(pmf[a, k]).all())
+            qs = pmf_quantiles(pmf[a, k]) if ok else [None] * len(FORECAST_QUANTILES)
+            rows.append({"time": float(d["forecast_time"].values[a, k]), "mean": float(mean[a, k]) if ok else None,
+                         **{f"q{round(100 * q):02d}": (None if v is None else int(v))
+                            for q, v in zip(FORECAST_QUANTILES, qs)}})
+        out[str(site)] = rows
+    return out
 
 
 def summarise(ds: xr.Dataset, *, level: float = 0.9) -> dict[str, Any]:
@@ -383,5 +451,7 @@ def summarise(ds: xr.Dataset, *, level: float = 0.9) -> dict[str, Any]:
             "max_stationary_mass_above_cap": float(d["stationary_mass_above_cap"].max(skipna=True))
             if bool(d["stationary_exists"].any()) else None,
         }
+        if "forecast_pmf" in d:
+            entry["forecast"] = _forecast_summary(d)
         out[str(sc)] = entry
     return out

@@ -29,7 +29,7 @@ from tallyfit.infer.scenarios import Scenario, scenarios_from_table
 
 _FIT_KEYS = {"rates": str, "immigration": bool, "chains": int, "draws": int, "tune": int,
              "seed": int, "max_size": int, "detection": (float, int, str), "pooling": bool,
-             "target_accept": float, "varying_years": str}
+             "target_accept": float, "varying_years": str, "time_unit": str}
 _COVARIATE_KEYS = {"file": str, "births": list, "deaths": list, "future": dict}
 #: Values of [fit] varying_years.
 VARYING_YEARS = ("none", "births", "births_and_deaths")
@@ -68,6 +68,7 @@ class RunSettings:
     birth_covariates: tuple[str, ...] = ()
     death_covariates: tuple[str, ...] = ()
     future_covariates: dict[str, float] = field(default_factory=dict)
+    time_unit: str = "auto"
 
     def with_options(self, **options: Any) -> "RunSettings":
         """A copy with the given options replaced (None values are ignored)."""
@@ -85,6 +86,10 @@ class RunSettings:
         if self.varying_years not in VARYING_YEARS:
             raise bad("varying_years", f"varying_years must be one of {', '.join(VARYING_YEARS)}, got "
                       f"{self.varying_years!r}")
+        unit = self.time_unit.strip()
+        if unit != self.time_unit or not unit or len(unit) > 24 or not all(c.isalpha() or c == " " for c in unit):
+            raise bad("time_unit", f"time_unit must be a word such as \"year\", \"month\" or \"day\" (or \"auto\"), "
+                      f"got {self.time_unit!r}")
         used = (*self.birth_covariates, *self.death_covariates)
         if used and self.covariates_file is None:
             raise bad("covariates.file", "covariates are named but no covariate file is given",

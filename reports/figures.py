@@ -20,7 +20,7 @@ import pandas as pd
 import xarray as xr
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
-from matplotlib.ticker import FuncFormatter
+from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from .bands import Band, band
 from .predictive import PredictiveBands
@@ -117,13 +117,15 @@ def _band_fill(ax: Any, x: np.ndarray, b: Any, colour: str, label: str | None, l
 
 
 # --------------------------------------------------------------------------- data
-def predictive_figure(counts: pd.DataFrame | None, bands: PredictiveBands, sites: Sequence[str]) -> Figure:
+def predictive_figure(counts: pd.DataFrame | None, bands: PredictiveBands, sites: Sequence[str],
+                      unit: str = "time unit") -> Figure:
     """The counts of each site with posterior predictive bands (50% and 90%) and median.
 
     Args:
         counts: observed counts (columns time, count, site); None draws bands only.
         bands: posterior predictive quantiles per site.
         sites: the sites, one panel each.
+        unit: the time unit ("year"), for the axis label; whole times get whole ticks.
 
     Returns:
         Figure.
@@ -152,7 +154,10 @@ def predictive_figure(counts: pd.DataFrame | None, bands: PredictiveBands, sites
                     ax.axvline(t_miss, color=MUTED, linestyle=":", linewidth=0.8,
                                label="no survey" if k == 0 else None)
             ax.set_title(plain_text(site) if len(sites) > 1 else "Counts and posterior predictive bands")
-            ax.set_xlabel("time")
+            ax.set_xlabel(unit if unit != "time unit" else "time")
+            if counts is not None and bool(np.all(np.mod(counts["time"].to_numpy(dtype=float), 1) == 0)):
+                ax.xaxis.set_major_locator(MaxNLocator(integer=True))  # 2004, not 2002.5
+                ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:.0f}"))
             ax.set_ylabel("count")
             ax.set_ylim(bottom=0)
             if i == 0 and not many:
@@ -165,7 +170,8 @@ def predictive_figure(counts: pd.DataFrame | None, bands: PredictiveBands, sites
 
 # --------------------------------------------------------------------------- rates
 def rates_figure(derived: xr.Dataset, scenario: str, level: float = 0.9,
-                 observed: tuple[float, float] | None = None, max_size: int | None = None) -> Figure:
+                 observed: tuple[float, float] | None = None, max_size: int | None = None,
+                 unit: str = "time unit") -> Figure:
     """Per-capita birth and death rates by size, and their difference, with credible bands.
 
     Args:
@@ -174,6 +180,7 @@ def rates_figure(derived: xr.Dataset, scenario: str, level: float = 0.9,
         level: credible level of the bands.
         observed: (smallest, largest) count, shaded as the sizes the data cover.
         max_size: largest size drawn (default: the cap).
+        unit: the time unit, for the axis labels ("per animal per year").
 
     Returns:
         Figure with two panels.
@@ -195,7 +202,7 @@ def rates_figure(derived: xr.Dataset, scenario: str, level: float = 0.9,
         _band_fill(ax1, x, bd, DEATH, "death d(n)", level)
         ax1.set_title("Per-capita birth and death rates")
         ax1.set_xlabel("population size n")
-        ax1.set_ylabel("rate per animal per time unit")
+        ax1.set_ylabel(f"rate per animal per {unit}")
         ax1.set_ylim(bottom=0)
         handles, labels = ax1.get_legend_handles_labels()
         keep = [i for i, lab in enumerate(labels) if "interval" not in lab]
@@ -204,7 +211,7 @@ def rates_figure(derived: xr.Dataset, scenario: str, level: float = 0.9,
         ax2.axhline(0, color=INK, linewidth=0.8)
         ax2.set_title("Per-capita growth b(n) − d(n)")
         ax2.set_xlabel("population size n")
-        ax2.set_ylabel("per animal per time unit")
+        ax2.set_ylabel(f"per animal per {unit}")
         ax2.legend(loc="best")
         return fig
 
@@ -289,7 +296,7 @@ def _iucn_marks(ax: Any, horizons: Mapping[str, float], log: bool) -> None:
 
 
 def extinction_figure(draws: xr.DataArray, horizons: Mapping[str, float], level: float = 0.9,
-                      title: str = "", panels: str | None = None) -> Figure:
+                      title: str = "", panels: str | None = None, units: str = "time units") -> Figure:
     """Probability of falling to each threshold within each horizon, with bands and the criterion E marks.
 
     The criterion E marks (IUCN 2012, Red List Categories and Criteria v3.1) are CR at
@@ -340,7 +347,7 @@ def extinction_figure(draws: xr.DataArray, horizons: Mapping[str, float], level:
                 ax.set_ylim(0, 1)
             ax.yaxis.set_major_formatter(FuncFormatter(_percent))
             ax.set_xlim(0, max(x.max(), max(horizons.values())) * 1.12)
-            ax.set_xlabel("horizon (years for criterion E)")
+            ax.set_xlabel(f"horizon ({units}; years for criterion E)" if units != "years" else "horizon (years)")
             ax.set_ylabel("probability")
             ax.set_title(plain_text(key) if key is not None else plain_text(title))
             if i == ncol - 1 or len(keys) == 1:
@@ -392,13 +399,14 @@ def categories_figure(table: pd.DataFrame) -> Figure:
         return fig
 
 
-def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
+def scenario_figure(derived: xr.Dataset, level: float = 0.9, units: str = "time units") -> Figure:
     """Scenarios beside the baseline: extinction curves (all sites, threshold 0 or the lowest),
     and the paired difference from the baseline at each horizon, with bands.
 
     Args:
         derived: the push-forward Dataset (baseline first).
         level: credible level.
+        units: the plural time unit, for the axis labels.
 
     Returns:
         Figure with two panels.
@@ -439,11 +447,11 @@ def scenario_figure(derived: xr.Dataset, level: float = 0.9) -> Figure:
             ax1.set_ylim(0, 1)
         ax1.yaxis.set_major_formatter(FuncFormatter(_percent))
         ax1.set_title(f"P({what}), all sites")
-        ax1.set_xlabel("horizon")
+        ax1.set_xlabel(f"horizon ({units})")
         ax1.legend(loc="best")
         ax2.axhline(0, color=INK, linewidth=0.8)
         ax2.set_title(f"Change from {plain_text(scen[0])} (paired)")
-        ax2.set_xlabel("horizon")
+        ax2.set_xlabel(f"horizon ({units})")
         ax2.set_ylabel("difference in probability")
         ax2.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{100 * v:+.3g} pts" if v else "0"))
         if len(scen) > 1:

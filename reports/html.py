@@ -294,6 +294,7 @@ figcaption { font-size: .85rem; color: var(--muted); margin-top: .3rem; }
 .box.alert .box-title { color: var(--bad); font-size: 1.1rem; text-transform: uppercase; letter-spacing: .02em; }
 .box.warn { border-color: #c79a1e; background: var(--warnbg); }
 .box.ok { border-color: var(--good); background: var(--goodbg); }
+.headline { font-size: 1.15rem; line-height: 1.45; margin: .4rem 0 1rem; }
 .caution { border: 1.5px solid var(--ink); padding: .6rem 1rem; margin: 1rem 0; }
 .key { font-size: 1.02rem; }
 .key li { margin: .25rem 0; }

@@ -37,12 +37,13 @@ def _signed(x: float) -> str:
     return ("+" if x > 0 else "−" if x < 0 else "") + s
 
 
-def trend_lines(trend: pd.DataFrame, sites: pd.DataFrame) -> list[str]:
+def trend_lines(trend: pd.DataFrame, sites: pd.DataFrame, unit: str = "time unit") -> list[str]:
     """One sentence per site: what the counts did, and the change the model expects from the last count.
 
     Args:
         trend: :func:`reports.tables.trend_table`.
         sites: :func:`reports.tables.site_data_table`.
+        unit: the time unit ("year").
 
     Returns:
         list of sentences.
@@ -64,7 +65,7 @@ def trend_lines(trend: pd.DataFrame, sites: pd.DataFrame) -> list[str]:
             verdict = "cannot tell whether it will grow or decline"
         size = "" if int(r.size) == int(r.last_count) else f", about {int(r.size)} animals allowing for missed ones"
         parts.append(f"from the last count of {int(r.last_count)} (at {format_number(r.last_time)}{size}) the model "
-                     f"{verdict}: expected change {_signed(r.mean)} animals per time unit "
+                     f"{verdict}: expected change {_signed(r.mean)} animals per {unit} "
                      f"({format_interval(r.lo, r.hi, lambda v: _signed(float(v)))}), probability of growth "
                      f"{format_probability(r.p_increase)}")
         text = "; ".join(parts) + "."
@@ -98,13 +99,14 @@ def long_run_line(derived: xr.Dataset, scenario: str, level: float = 0.9) -> str
             f"(quasi-stationary mean, {pct} interval {format_interval(float(b.lo), float(b.hi))}).")
 
 
-def extinction_line(table: pd.DataFrame, level: float = 0.9, n_sites: int = 1) -> str:
+def extinction_line(table: pd.DataFrame, level: float = 0.9, n_sites: int = 1, units: str = "time units") -> str:
     """One sentence: probability that the population (every site) dies out within each horizon (threshold 0).
 
     Args:
         table: :func:`reports.tables.extinction_table` for all sites.
         level: credible level of the intervals in the table.
         n_sites: number of sites (the sentence says "every site" when there are several).
+        units: the plural time unit ("years").
 
     Returns:
         sentence (empty when the table has no threshold 0).
@@ -115,7 +117,7 @@ def extinction_line(table: pd.DataFrame, level: float = 0.9, n_sites: int = 1) -
     parts = [f"{format_probability(r.mean)} within {format_number(r.horizon)}" for r in rows.itertuples(index=False)]
     who = " (every site at 0)" if n_sites > 1 else ""
     return (f"Probability of extinction{who}: " + ", ".join(parts)
-            + f" time units (posterior means; {level:.0%} intervals in the table below).")
+            + f" {units} (posterior means; {level:.0%} intervals in the table below).")
 
 
 def category_line(row: pd.Series, horizons: Mapping[str, float], generation_time: float | None) -> str:
@@ -140,3 +142,35 @@ def category_line(row: pd.Series, horizons: Mapping[str, float], generation_time
             f"CR {format_number(horizons['CR'])} y, EN {format_number(horizons['EN'])} y, "
             f"VU {format_number(horizons['VU'])} y ({gen}). This is criterion E alone, for all sites "
             f"together; an assessment weighs every criterion.")
+
+
+def headline(table: pd.DataFrame, categories: pd.Series, n_failed: int, n_sites: int, units: str,
+             level: float = 0.9) -> str:
+    """The answer a manager reads first: the risk at the longest horizon and whether the checks passed.
+
+    Args:
+        table: :func:`reports.tables.extinction_table` for all sites (baseline).
+        categories: criterion E category probabilities of the baseline (a row of category_table).
+        n_failed: how many checks failed.
+        n_sites: number of sites.
+        units: the plural time unit ("years").
+        level: credible level of the interval.
+
+    Returns:
+        one or two sentences.
+    """
+    lowest = int(table["threshold"].min())
+    rows = table[table["threshold"] == lowest]
+    r = rows.loc[rows["horizon"].idxmax()]
+    who = "every site" if n_sites > 1 else "the population"
+    what = "dies out" if lowest == 0 else f"falls to {lowest} animals or fewer"
+    if n_sites > 1:
+        what = "is extinct" if lowest == 0 else f"is at {lowest} animals or fewer"
+    best = str(categories.idxmax())
+    first = (f"Probability that {who} {what} within {format_number(float(r['horizon']))} {units}: "
+             f"{format_probability(float(r['mean']))} ({level:.0%} interval "
+             f"{format_interval(float(r['lo']), float(r['hi']), format_probability)}); most probable criterion E "
+             f"category: {best} ({format_probability(float(categories[best]))}).")
+    second = ("Every check passed." if n_failed == 0 else
+              f"{n_failed} check{'s' if n_failed != 1 else ''} failed: treat these numbers as provisional.")
+    return f"{first} {second}"

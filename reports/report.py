@@ -35,7 +35,8 @@ from . import figures as F
 from .bands import band
 from .html import (Cell, esc, figure, format_interval, format_number, format_points, format_probability, frame_table,
                    notice, page, section, table)
-from .narrative import caution_text, category_line, extinction_line, long_run_line, trend_lines
+from .forecast import forecast_figure, forecast_frame
+from .narrative import caution_text, category_line, extinction_line, headline, long_run_line, trend_lines
 from .predictive import predictive_bands
 from .review import diagnostics_section
 from .tables import (category_table, covariate_effects, environment_share, extinction_table, flatten_settings,
@@ -65,6 +66,11 @@ class _Report:
         self.horizons = rf.criterion_e_horizons
         self.generation_time = rf.generation_time
         self.categories = rf.categories
+        data = rf.summary_section("data") or {}
+        self.unit = str(data.get("time_unit", "time unit"))  # singular and plural, as the run recorded them
+        self.units = str(data.get("time_units", "time units"))
+        self.unit_reason = str(data.get("time_unit_reason", ""))
+        self.varying = (rf.summary_section("environment") or {}).get("varying_years", "none") != "none"
 
     # ---- figures ---------------------------------------------------------------------
     def fig(self, name: str, build: Callable[[], Any], alt: str, caption: str) -> str:
@@ -91,10 +97,10 @@ class _Report:
                          "provisional until they are resolved.")
         starts = rf.summary_section("starts")
         trend = trend_table(d, rf.counts, self.base, lv, starts)
-        lines += trend_lines(trend, site_data_table(rf.counts))
+        lines += trend_lines(trend, site_data_table(rf.counts), self.unit)
         lines.append(long_run_line(d, self.base, lv))
         ext_all = extinction_table(d, self.base, lv)
-        line = extinction_line(ext_all, lv, len(rf.sites))
+        line = extinction_line(ext_all, lv, len(rf.sites), self.units)
         if line:
             lines.append(line)
         lines.append(category_line(cats.loc[self.base], self.horizons, self.generation_time))
@@ -105,7 +111,7 @@ class _Report:
 
     def _extinction_summary_table(self, ext: pd.DataFrame) -> str:
         ks = sorted(ext["threshold"].unique())
-        header = ["horizon"]
+        header = [f"horizon ({self.units})"]
         for k in ks:
             what = "extinction (0)" if k == 0 else f"≤ {k} animals"
             header += [f"P({what})", f"{self.pct} interval"]
@@ -135,7 +141,7 @@ class _Report:
                                                        "largest": "largest count", "last_count": "last count"},
                                 index="site", caption="The counts, as read (counts.csv).")
         pp = predictive_bands(rf.idata, rf.sites)
-        body += self.fig("data_predictive.png", lambda: F.predictive_figure(rf.counts, pp, rf.sites),
+        body += self.fig("data_predictive.png", lambda: F.predictive_figure(rf.counts, pp, rf.sites, self.unit),
                          "Counts over time with posterior predictive bands per site",
                          "Dots: the counts. Shaded: 50% and 90% posterior predictive intervals of simulated counts; "
                          "line: their median. Counts that "
@@ -153,10 +159,11 @@ class _Report:
                      f"{esc(format_number(sc.predicted[0], 3))} (90% {esc(format_number(sc.predicted[1], 3))} to "
                      f"{esc(format_number(sc.predicted[2], 3))}; posterior predictive p = "
                      f"{esc(format_number(sc.p_value, 2))}). {esc(verdict)}</p>")
+        body += self.forecast_part()
         data = rf.summary_section("data")
         settings = rf.run["settings"] if rf.run is not None else rf.summary_section("settings")
         body += "<h3>Assumptions</h3><p>The results depend on these settings (rate family, priors, observation model, " \
-                "size cap, horizons). Rates are per time unit of the data's time column.</p>"
+                f"size cap, horizons). Rates are per {esc(self.unit)}: {esc(self.unit_reason or 'the unit of the data’s time column')}.</p>"
         family = rf.summary_section("family") or {}
         fam = rf.family_text or (f"Rate family: {family['name']}\n  {family['formula']}" if family else "")
         if fam:
@@ -186,7 +193,7 @@ class _Report:
         top = None
         if observed is not None:
             top = int(max(observed[1] * 1.6, 10))
-        body = self.fig("rates.png", lambda: F.rates_figure(d, self.base, self.level, observed, top),
+        body = self.fig("rates.png", lambda: F.rates_figure(d, self.base, self.level, observed, top, self.unit),
                         "Per-capita birth and death rates against population size with credible bands",
                         f"Left: per-capita birth rate b(n) and death rate d(n) by size, posterior mean with {self.pct} "
                         "bands. Right: their difference; above 0 an animal adds more births than deaths. Shaded "
@@ -195,7 +202,7 @@ class _Report:
         body += self.pooling_note()
         iota = band(d["immigration"].sel(scenario=self.base), self.level)
         if float(iota.hi) > 0:
-            body += (f"<p>Immigration ι (arrivals per time unit, independent of size): posterior mean "
+            body += (f"<p>Immigration ι (arrivals per {esc(self.unit)}, independent of size): posterior mean "
                      f"{esc(format_number(float(iota.mean)))}, {self.pct} interval "
                      f"{esc(format_interval(float(iota.lo), float(iota.hi)))}.</p>")
         else:
@@ -215,6 +222,27 @@ class _Report:
             body += frame_table(pt.apply(pd.to_numeric), cols, index="parameter",
                                 caption=f"Posterior summary of the parameters ({where}).")
         return section("rates", "3. Birth and death rates", body)
+
+    def forecast_part(self) -> str:
+        """The next censuses: a fan chart and a table (baseline), from summary.json."""
+        frame = forecast_frame(self.rf.summary_section("derived"), self.base)
+        if frame.empty:
+            return ""
+        fmt = lambda v: "—" if pd.isna(v) else format_number(float(v))  # noqa: E731
+        rows = [[Cell(r.site), Cell(format_number(float(r.time)), "num"), Cell(fmt(r.q50), "num"),
+                 Cell(f"{fmt(r.q25)} to {fmt(r.q75)}", "num"), Cell(f"{fmt(r.q05)} to {fmt(r.q95)}", "num"),
+                 Cell(fmt(r.mean), "num")] for r in frame.itertuples(index=False)]
+        out = "<h3>How many to expect at the next censuses</h3>"
+        out += self.fig("forecast.png", lambda: forecast_figure(self.rf.counts, frame, self.rf.sites, self.unit),
+                        "Fan chart of the forecast of the next censuses per site",
+                        "The predictive distribution of the population size at each of the next census times, "
+                        "starting from the last count: 50% and 90% bands and the median. It averages over the "
+                        "posterior, so it carries both the uncertainty in the rates and the chance of births and "
+                        "deaths" + (" and of good and bad years" if self.varying else "") + ".")
+        out += table(["site", "time", "median", "50% interval", "90% interval", "mean"], rows,
+                     caption=f"{self.base.capitalize()}: forecast of the population size at the next censuses "
+                             "(with exact counts, the next counts).")
+        return out
 
     def environment_part(self) -> str:
         """Good and bad years (σ, the environmental share of the variance) and covariate effects."""
@@ -240,7 +268,7 @@ class _Report:
                         "themselves (Lande, Engen &amp; Sæther 2003).")
             out += (" The extinction and quasi-extinction probabilities, the criterion E categories, the mean "
                     "times to extinction and the size distributions below all come from the annual chain that "
-                    "draws a new year each time unit, so they depend on σ: the wider the swings, the likelier a "
+                    f"draws a new year each {esc(self.unit)}, so they depend on σ: the wider the swings, the likelier a "
                     "run of bad years.</p>")
         effects = covariate_effects(post, lv)
         if not effects.empty:
@@ -276,11 +304,11 @@ class _Report:
                      Cell(format_interval(float(b.lo), float(b.hi)), "num")])
         rate = d["quasi_decay_rate"]
         b = band(rate, lv)
-        rows.append(["extinction rate from quasi-stationarity (per time unit)", Cell(format_number(float(b.median)), "num"),
+        rows.append([f"extinction rate from quasi-stationarity (per {self.unit})", Cell(format_number(float(b.median)), "num"),
                      Cell(format_interval(float(b.lo), float(b.hi)), "num")])
         for site in self.rf.sites:
             b = band(d["log10_mean_time_to_extinction"].sel(site=site), lv)
-            rows.append([f"mean time to extinction from the last count, {site} (time units)",
+            rows.append([f"mean time to extinction from the last count, {site} ({self.units})",
                          Cell(_power_of_ten(float(b.median)), "num"),
                          Cell(f"{_power_of_ten(float(b.lo))} to {_power_of_ten(float(b.hi))}", "num")])
         body += table(["quantity", "posterior mean (median for rates and times)", f"{self.pct} interval"], rows)
@@ -293,17 +321,18 @@ class _Report:
         marks = (f"Diamonds: IUCN criterion E thresholds (IUCN 2012) — CR 50% within {format_number(hz['CR'])} y, "
                  f"EN 20% within {format_number(hz['EN'])} y, VU 10% within {format_number(hz['VU'])} y; a category's "
                  "criterion is met when the probability at its horizon reaches its diamond. Criterion E horizons "
-                 "assume the data's time unit is years.")
+                 + ("assume the data's time unit is years." if self.unit != "year" else "are in years, as the data are."))
         body = self.fig("extinction_all_sites.png",
                         lambda: F.extinction_figure(d["extinction_probability_all_sites"], hz, self.level,
-                                                    title="All sites together"),
+                                                    title="All sites together", units=self.units),
                         "Extinction and quasi-extinction probability against horizon, all sites, with criterion E marks",
                         f"Probability that every site has fallen to the threshold (0: extinction) within each horizon: "
                         f"posterior mean and {self.pct} band. {marks} Log axis when every interval stays below 5%.")
         body += self._extinction_tables(extinction_table(self.derived, self.base, self.level), "All sites together")
         if len(self.rf.sites) > 1:
             body += self.fig("extinction_by_site.png",
-                             lambda: F.extinction_figure(d["extinction_probability"], hz, self.level, panels="site"),
+                             lambda: F.extinction_figure(d["extinction_probability"], hz, self.level, panels="site",
+                                                                 units=self.units),
                              "Extinction and quasi-extinction probability per site",
                              f"Each site on its own, from its last count: posterior mean and {self.pct} band. {marks}")
             for site in self.rf.sites:
@@ -316,7 +345,7 @@ class _Report:
         rows = [[Cell("extinction (0)" if r.threshold == 0 else f"≤ {r.threshold}"), Cell(format_number(r.horizon), "num"),
                  Cell(format_probability(r.mean), "num"), Cell(format_interval(r.lo, r.hi, format_probability), "num")]
                 for r in ext.itertuples(index=False)]
-        return table(["threshold", "horizon", "probability (posterior mean)", f"{self.pct} interval"], rows,
+        return table(["threshold", f"horizon ({self.units})", "probability (posterior mean)", f"{self.pct} interval"], rows,
                      caption=title)
 
     # ---- 6. scenarios ----------------------------------------------------------------
@@ -325,7 +354,7 @@ class _Report:
         if len(scen) < 2:
             return section("scenarios", "6. Scenarios", "<p>No scenarios were set for this run: only the fitted "
                                                         "rates (the baseline) are shown.</p>")
-        what = scenario_settings(self.rf.scenario_settings)
+        what = scenario_settings(self.rf.scenario_settings, self.unit)
         body = table(["scenario", "what it changes"], [[s, what.get(s) or "—"] for s in scen],
                      caption="Scenarios change the fitted rates of every posterior draw before the push-forward; all "
                              "use the same draws, so differences are paired.")
@@ -343,7 +372,7 @@ class _Report:
                        "P(scenario higher)"], rows,
                       caption="Paired differences, scenario minus baseline, draw by draw (pts: percentage points). "
                               "When a few draws carry most of the risk, a mean can lie outside its interval.")
-        body += self.fig("scenarios.png", lambda: F.scenario_figure(self.derived, self.level),
+        body += self.fig("scenarios.png", lambda: F.scenario_figure(self.derived, self.level, self.units),
                          "Extinction curves per scenario and paired differences from the baseline",
                          f"Left: probability of extinction of every site within each horizon, per scenario (posterior "
                          f"mean, {self.pct} band). Right: paired difference from {self.base} (dot: mean; bar: "
@@ -371,6 +400,11 @@ class _Report:
         banner += notice("Checks that could not be made", [f"{c.name}: {c.detail}" for c in self.audit.not_made], "warn")
         banner += notice("Warnings recorded by the run (summary.json)",
                          [str(w) for w in (self.rf.summary_section("warnings") or [])], "warn")
+        ext = extinction_table(self.derived, self.base, self.level)
+        if not ext.empty:
+            cats = category_table(self.derived, self.categories).loc[self.base]
+            banner = (f'<p class="headline">{esc(headline(ext, cats, len(failed), len(self.rf.sites), self.units, self.level))}'
+                      "</p>" + banner)
         data = self.rf.summary_section("data") or {}
         family = self.rf.summary_section("family") or {}
         subtitle = [f"Data: {data.get('source', 'counts.csv')}"

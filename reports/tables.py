@@ -121,16 +121,17 @@ def trend_table(derived: xr.Dataset, counts: pd.DataFrame | None, scenario: str,
 
 _NEUTRAL = {"harvest_rate": 0.0, "harvest_quota": 0.0, "death_factor": 1.0, "birth_factor": 1.0,
             "added_immigration": 0.0}
-_SETTING_WORDS = {"harvest_rate": "per-capita removal rate", "harvest_quota": "animals removed per time unit",
+_SETTING_WORDS = {"harvest_rate": "per-capita removal rate", "harvest_quota": "animals removed per {unit}",
                   "death_factor": "per-capita death × ", "birth_factor": "per-capita birth × ",
-                  "added_immigration": "animals added per time unit"}
+                  "added_immigration": "animals added per {unit}"}
 
 
-def scenario_settings(scenarios: list[Mapping[str, Any]]) -> dict[str, str]:
+def scenario_settings(scenarios: list[Mapping[str, Any]], unit: str = "time unit") -> dict[str, str]:
     """What each scenario changes, in words.
 
     Args:
         scenarios: one dict per scenario (``RunFolder.scenario_settings``).
+        unit: the time unit ("year").
 
     Returns:
         {scenario name: description}.
@@ -141,8 +142,9 @@ def scenario_settings(scenarios: list[Mapping[str, Any]]) -> dict[str, str]:
         for key, neutral in _NEUTRAL.items():
             v = item[key]
             if v != neutral:
-                word = _SETTING_WORDS[key]
+                word = _SETTING_WORDS[key].format(unit=unit)
                 parts.append(f"{word}{v:g}" if word.endswith("× ") else f"{word} {v:g}")
+        parts += [f"{name} = {value:g}" for name, value in dict(item.get("covariates") or {}).items()]
         desc = str(item["description"]).strip()
         if not parts:
             out[str(item["name"])] = desc or "no change to the fitted rates"

@@ -116,7 +116,11 @@ def _hash_checks(folder: Path, run: dict | None) -> list[Check]:
         elif name not in hashes:
             out.append(Check(f"hash of {name}", None, "run.toml records no hash for it", src))
         else:
-            got = sha256_file(path)
+            try:
+                got = sha256_file(path)
+            except OSError as exc:  # unreadable (permissions, a failing disk): a failed check, not a crash
+                out.append(Check(f"hash of {name}", False, f"{name} cannot be read ({exc.strerror or exc})", src))
+                continue
             ok = got == str(hashes[name]).lower()
             out.append(Check(f"hash of {name}", ok, f"SHA-256 {got} matches run.toml" if ok else
                              f"SHA-256 {got} differs from {hashes[name]} recorded in run.toml: the file "

@@ -186,6 +186,29 @@ def _read_counts(folder: Path, out: RunFolder) -> None:
         out.notes.append(f"counts.csv cannot be read ({exc}); the data cannot be shown")
 
 
+def _check_hdf5(path: Path) -> None:
+    """Open every group, variable and attribute of a netCDF-4 file with h5py (HDF5 checks its
+    metadata checksums), so damage is met here and not inside the netCDF reader, which
+    would print an error of its own while cleaning up a half-opened file."""
+    import h5py
+
+    def visit(_: str, obj: Any) -> None:
+        for _value in obj.attrs.values():
+            pass
+
+    with h5py.File(path, "r") as fh:
+        visit("/", fh)
+        fh.visititems(visit)
+
+
+def _damaged(exc: BaseException) -> str:
+    """Why a netCDF file cannot be read, in words, with the reader's own message."""
+    if isinstance(exc, PermissionError):
+        return f"cannot be read: permission denied ({exc.strerror})"
+    return (f"cannot be read: the file is damaged (cut short, overwritten or not netCDF), so nothing in it is "
+            f"used; rerun the fit to write it again ({type(exc).__name__}: {exc})")
+
+
 def open_run(run_dir: str | Path) -> RunFolder:
     """Open a run folder read-only.
 
@@ -207,17 +230,20 @@ def open_run(run_dir: str | Path) -> RunFolder:
     for name in ("posterior.nc", "derived.nc"):
         if not (folder / name).is_file():
             raise RunFolderError(folder / name, "is missing; a run folder needs both posterior.nc and derived.nc")
-    try:
-        idata = az.from_netcdf(folder / "posterior.nc")
+    try:  # read every value now, so a damaged chunk (checksum, zlib) is found here, not halfway through
+        _check_hdf5(folder / "posterior.nc")
+        with az.rc_context({"data.load": "eager"}):
+            idata = az.from_netcdf(folder / "posterior.nc")
     except Exception as exc:  # the netCDF readers raise many types for a damaged file
-        raise RunFolderError(folder / "posterior.nc", f"cannot be read ({type(exc).__name__}: {exc})") from None
+        raise RunFolderError(folder / "posterior.nc", _damaged(exc)) from None
     if "posterior" not in idata.groups():
         raise RunFolderError(folder / "posterior.nc", "has no posterior group")
     try:
+        _check_hdf5(folder / "derived.nc")
         with xr.open_dataset(folder / "derived.nc", engine="h5netcdf") as ds:
             derived = ds.load()
     except Exception as exc:
-        raise RunFolderError(folder / "derived.nc", f"cannot be read ({type(exc).__name__}: {exc})") from None
+        raise RunFolderError(folder / "derived.nc", _damaged(exc)) from None
     for name, dims in S.DERIVED_VARIABLES.items():
         if name not in derived or tuple(derived[name].dims) != dims:
             raise RunFolderError(folder / "derived.nc", f"variable {name} missing or not over {', '.join(dims)}")

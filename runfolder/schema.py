@@ -45,7 +45,7 @@ CAUTION = ("Results are model-based: they depend on the counts supplied and on t
            "qualified review.")
 
 #: Bumped when a file's layout changes incompatibly; recorded in summary.json.
-SCHEMA_VERSION = 3  # 3: the "environment" section (good and bad years, covariates)
+SCHEMA_VERSION = 3  # 3: the "environment" section (good and bad years, covariates), the forecast
 
 #: Files every complete run folder holds.
 RUN_FILES: tuple[str, ...] = ("posterior.nc", "derived.nc", "summary.csv", "summary.json", "report.html",
@@ -59,7 +59,7 @@ FIGURES_DIR = "figures"
 SUMMARY_SECTIONS: dict[str, str] = {
     "schema_version": "SCHEMA_VERSION of the writer",
     "caution": "the caution every report carries",
-    "data": "source, sites, n_counts, sha256, time_unit",
+    "data": "source, sites, n_counts, sha256, time_unit (singular noun), time_units (plural), time_unit_reason (a sentence)",
     "family": "name, formula, description (the family's formula and priors as text)",
     "settings": "the resolved run settings",
     "cap": "the size cap N",
@@ -81,7 +81,7 @@ SUMMARY_CSV_COLUMNS: tuple[str, ...] = ("kind", "scenario", "quantity", "mean", 
 RUN_TOML_SECTIONS: tuple[str, ...] = ("settings", "run", "versions", "hashes")
 
 #: derived.nc: the dims, and each variable with its dims.
-DERIVED_DIMS: tuple[str, ...] = ("scenario", "chain", "draw", "size", "site", "threshold", "horizon")
+DERIVED_DIMS: tuple[str, ...] = ("scenario", "chain", "draw", "size", "site", "threshold", "horizon", "step")
 _S = ("scenario", "chain", "draw")
 DERIVED_VARIABLES: dict[str, tuple[str, ...]] = {
     "birth_per_capita": _S + ("size",),
@@ -99,6 +99,9 @@ DERIVED_VARIABLES: dict[str, tuple[str, ...]] = {
     "extinction_error_bound": _S + ("site", "threshold", "horizon"),
     "extinction_probability_all_sites": _S + ("threshold", "horizon"),
     "iucn_category": _S,
+    # the forecast of the next censuses: the posterior predictive distribution (averaged over draws)
+    "forecast_pmf": ("scenario", "site", "step", "size"),
+    "forecast_time": ("site", "step"),
 }
 #: The variable holding criterion E category codes (CF flag_values / flag_meanings).
 CATEGORY_VARIABLE = "iucn_category"

@@ -3,12 +3,16 @@
 :func:`write_run` takes a :class:`RunRecord` and writes every file of
 :data:`~tallyfit.runfolder.schema.RUN_FILES` into a staged folder that is renamed into
 place only when all of it (the report included) is written, so a crash, a kill or a full
-disk never leaves a folder that looks complete.
+disk never leaves a folder that looks complete. posterior.nc and derived.nc are built in
+memory and written like every other file (HDF5 itself never meets a full disk, which it
+does not survive cleanly), with an HDF5 Fletcher-32 checksum on every numeric variable so
+that a damaged file is refused when read instead of giving wrong numbers.
 """
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from importlib import metadata
 from pathlib import Path
@@ -26,7 +30,7 @@ from . import schema as S
 from .store import json_value, sha256_file, staged_folder, toml_value, write_atomic
 
 __all__ = ["RunRecord", "write_run", "summary_document", "summary_rows", "encode_derived", "package_versions",
-           "PACKAGES"]
+           "netcdf_bytes", "inference_netcdf_bytes", "PACKAGES"]
 
 #: Packages whose versions run.toml records.
 PACKAGES = ("tallyfit", "numpy", "scipy", "pandas", "xarray", "pymc", "pytensor", "arviz", "numba", "matplotlib")
@@ -48,7 +52,7 @@ class RunRecord:
         scenarios: one dict per scenario, baseline first (``Scenario.as_dict()``).
         tol: the solvers' tolerance.
         cap: the size cap N.
-        data: source, sites, n_counts, sha256, time_unit.
+        data: source, sites, n_counts, sha256, time_unit, time_units, time_unit_reason.
         family: name, formula, description.
         settings: the resolved run settings (plain data).
         starts: {site: start size of the forecasts}.
@@ -182,8 +186,60 @@ def encode_derived(derived: xr.Dataset, record: RunRecord) -> xr.Dataset:
     return out
 
 
+def _checked(ds: xr.Dataset, *, compress: bool) -> dict[str, dict[str, Any]]:
+    """netCDF encodings: a Fletcher-32 checksum (and zlib when asked) on every numeric variable."""
+    return {str(name): {"fletcher32": True, **({"zlib": True} if compress else {})}
+            for name, var in ds.variables.items() if var.dtype.kind in "biufc"}
+
+
+@contextmanager
+def _local_write_lock() -> Iterator[None]:
+    """Let xarray take its write lock in this process, not from a Dask cluster.
+
+    xarray asks the active Dask scheduler for a lock named after the file it writes; inside
+    a batch worker that is the cluster, which cannot make one for an in-memory file, so
+    every write would fail. The data written here are in memory: a local lock is right.
+    """
+    try:
+        import dask
+    except ImportError:
+        yield
+        return
+    with dask.config.set(scheduler="threads"):
+        yield
+
+
+def netcdf_bytes(ds: xr.Dataset) -> memoryview:
+    """A Dataset as netCDF-4 (h5netcdf) bytes, every numeric variable checksummed.
+
+    Args:
+        ds: the Dataset.
+
+    Returns:
+        the file's bytes.
+    """
+    with _local_write_lock():
+        return ds.to_netcdf(None, engine="h5netcdf", encoding=_checked(ds, compress=False))
+
+
+def inference_netcdf_bytes(idata: Any) -> memoryview:
+    """An ArviZ InferenceData as the netCDF-4 bytes ``InferenceData.to_netcdf`` writes (one
+    group per InferenceData group, zlib-compressed), with Fletcher-32 checksums added.
+
+    Args:
+        idata: the InferenceData.
+
+    Returns:
+        the file's bytes (read back by ``arviz.from_netcdf``).
+    """
+    tree = idata.to_datatree()
+    encoding = {f"/{g}": _checked(tree[g].to_dataset(), compress=True) for g in idata.groups()}
+    with _local_write_lock():
+        return tree.to_netcdf(None, engine="h5netcdf", encoding=encoding)
+
+
 def write_run(out: str | Path, record: RunRecord, *,
-              report: Callable[[Path], Any] | None = None) -> Path:
+              report: Callable[[Path], Any] | None = None, log: Callable[[str], None] | None = None) -> Path:
     """Write a complete run folder (crash-safe: staged, then renamed into place).
 
     Args:
@@ -192,21 +248,24 @@ def write_run(out: str | Path, record: RunRecord, *,
         report: called with the staged folder once every other file is written (the
             application passes ``tallyfit.reports.build_report``); None writes no report
             (the folder is then not complete: for tests of the other files only).
+        log: where to say that a lock left by a killed run was taken over.
 
     Returns:
         the run folder's path.
 
     Raises:
-        OSError: the folder cannot be written (full disk, no permission); nothing is
-            left behind and an earlier run at ``out`` is untouched.
+        FolderInUseError: another run is writing ``out`` (nothing is touched).
+        OSError: the folder cannot be written (full disk, no permission), ``filename``
+            naming the file as it would have been in ``out``; nothing is left behind and
+            an earlier run at ``out`` is untouched.
         SchemaError: the record does not fit the schema.
     """
     summary = summary_document(record)
     derived = encode_derived(record.derived, record)
-    with staged_folder(out) as tmp:
+    with staged_folder(out, log=log) as tmp:
         write_atomic(tmp / "counts.csv", record.counts_bytes)
-        record.idata.to_netcdf(str(tmp / "posterior.nc"))
-        derived.to_netcdf(tmp / "derived.nc", engine="h5netcdf")
+        write_atomic(tmp / "posterior.nc", inference_netcdf_bytes(record.idata))
+        write_atomic(tmp / "derived.nc", netcdf_bytes(derived))
         write_atomic(tmp / "summary.json", json.dumps(summary, indent=2, allow_nan=False))
         write_atomic(tmp / "summary.csv", summary_rows(summary).to_csv(index=False))
         doc = {"settings": toml_value(record.settings), "run": {"seed": int(record.seed), "cap": int(record.cap)},

@@ -41,6 +41,9 @@ def _parser() -> argparse.ArgumentParser:
                         help="good and bad years: each census interval's conditions move every animal's "
                              "births (or births and deaths) together; the year-to-year spread is estimated "
                              "(default none)")
+        sp.add_argument("--time-unit", dest="time_unit",
+                        help='what one unit of the time column is, e.g. "year" or "month" (default: '
+                             "years when the times are calendar years, else a neutral \"time unit\")")
         sp.add_argument("--covariates", type=Path, dest="covariates_file",
                         help="covariate CSV (time, [site], one column per covariate); which covariates act "
                              "on births or deaths, and their future values, go in the --config file's "
@@ -108,7 +111,7 @@ def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettin
     ext = outcome.headline.get("extinction", {})
     if ext:
         _say(args, "posterior mean probability that every site is extinct within: " +
-             ", ".join(f"{h} time units {p:.3g}" for h, p in ext.items() if p is not None))
+             ", ".join(f"{_in_units(h, outcome.headline)} {p:.3g}" for h, p in ext.items() if p is not None))
     iucn = outcome.headline.get("iucn", {})
     if iucn:
         _say(args, "criterion E category probabilities: " + ", ".join(f"{k} {v:.2f}" for k, v in iucn.items()))
@@ -116,6 +119,16 @@ def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettin
         print("tallyfit: convergence checks failed; see the report's diagnostics", file=sys.stderr)
         return EXIT_CHECK
     return EXIT_OK
+
+
+def _in_units(horizon: str, headline: dict) -> str:
+    """ "20 years" from a horizon key and the run's time unit (plural "time units" if unnamed)."""
+    unit = headline.get("time_unit", "time unit")
+    try:
+        value = float(horizon)
+    except ValueError:
+        return f"{horizon} {unit}s"
+    return f"{value:g} {unit if value == 1 else (unit if unit.endswith('s') else unit + 's')}"
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
@@ -153,6 +166,7 @@ def _settings_from_args(args: argparse.Namespace, base: "RunSettings | None" = N
                                  generation_time=getattr(args, "generation_time", None),
                                  varying_years=(None if getattr(args, "varying_years", None) is None
                                                 else args.varying_years.replace("-", "_")),
+                                 time_unit=getattr(args, "time_unit", None),
                                  covariates_file=(None if getattr(args, "covariates_file", None) is None
                                                   else str(args.covariates_file.resolve())))
 
@@ -219,6 +233,30 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _os_error_message(exc: OSError) -> str:
+    """What went wrong with the disk or a folder, naming the file and what to do.
+
+    Args:
+        exc: the error (its ``filename`` the file or folder concerned, when known).
+
+    Returns:
+        one sentence for the user.
+    """
+    import errno
+
+    where = exc.filename if exc.filename is not None else "a file"
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        what, todo = "the disk is full (no space left on device)", "free some space or choose another --out"
+    elif exc.errno in (errno.EACCES, errno.EPERM):
+        what, todo = "permission denied", "choose a folder you may write to (--out) or change its permissions"
+    elif exc.errno == errno.EROFS:
+        what, todo = "the file system is read-only", "choose a folder on a writable disk (--out)"
+    else:
+        what, todo = exc.strerror or str(exc), "check the disk and the folder"
+    return (f"cannot write or read {where}: {what}; nothing partial was left behind and an earlier run folder "
+            f"there is unchanged — {todo}")
+
+
 COMMANDS = {"demo": _cmd_demo, "fit": lambda a: _run_fit(a, a.counts, a.out), "solve": _cmd_solve,
             "simulate": _cmd_simulate, "audit": _cmd_audit, "batch": _cmd_batch}
 
@@ -227,15 +265,15 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``tallyfit`` console script; returns the exit code."""
     args = _parser().parse_args(argv)
     from tallyfit.infer.errors import InputError
+    from tallyfit.runfolder.reader import RunFolderError
 
     try:
         return COMMANDS[args.command](args)
-    except InputError as exc:
+    except (InputError, RunFolderError) as exc:  # RunFolderError: a damaged run folder, named with its file
         print(f"tallyfit: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
     except OSError as exc:  # the disk or the folder, not tallyfit: say which file and why
-        print(f"tallyfit: error: cannot write or read {exc.filename or 'a file'}: {exc.strerror or exc}; nothing "
-              "partial was left behind", file=sys.stderr)
+        print(f"tallyfit: error: {_os_error_message(exc)}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print("tallyfit: interrupted; nothing was written (any earlier run folder is unchanged)", file=sys.stderr)

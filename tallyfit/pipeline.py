@@ -16,6 +16,7 @@ import numpy as np
 from tallyfit.infer.counts import CountData
 from tallyfit.infer.criterion_e import criterion_e_horizons, horizons_with_criterion_e
 from tallyfit.infer.errors import InputError
+from tallyfit.infer.units import time_unit
 from tallyfit.infer.families import get_family
 from tallyfit.infer.fit import FitResult, fit_counts
 from tallyfit.infer.model import Environment
@@ -25,6 +26,7 @@ from tallyfit.inputs.counts_csv import load_counts
 from tallyfit.inputs.covariates_csv import load_covariates
 from tallyfit.inputs.settings import RunSettings
 from tallyfit.runfolder.audit import derived_checks
+from tallyfit.runfolder.store import claim_folder
 from tallyfit.runfolder.writer import RunRecord, write_run
 
 __all__ = ["PipelineOutcome", "run_pipeline", "start_sizes", "environment_of"]
@@ -63,6 +65,28 @@ def start_sizes(data: CountData, detection_mean: float) -> dict[str, int]:
         last = float(s.largest_counts[-1])
         out[str(s.site)] = int(round(last / detection_mean)) if detection_mean < 1 else int(last)
     return out
+
+
+#: Future censuses the forecast covers.
+FORECAST_STEPS = 5
+
+
+def forecast_timing(data: CountData, whole: bool) -> tuple[float, tuple[float, ...]]:
+    """The forecast's census interval (the data's median interval, whole time units when the
+    forecast steps through good and bad years) and each site's last census time.
+
+    Args:
+        data: the counts.
+        whole: round the interval to whole time units (at least 1).
+
+    Returns:
+        (interval, last times in site order).
+    """
+    gaps = np.concatenate([np.diff(s.surveyed_times) for s in data.series])
+    interval = float(np.median(gaps)) if gaps.size else 1.0
+    if whole:
+        interval = float(max(1, round(interval)))
+    return interval, tuple(float(s.surveyed_times[-1]) for s in data.series)
 
 
 def environment_of(settings: RunSettings) -> Environment:
@@ -104,8 +128,17 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
 
     Raises:
         InputError: bad counts or settings (nothing is written).
+        FolderInUseError: another run is writing ``out`` (an InputError; refused before any work).
         OSError: the run folder cannot be written (nothing partial is left).
     """
+    # one run at a time into a folder: a second one is refused at once, before it fits anything
+    with claim_folder(out, log=log):
+        return _fit_and_write(counts, settings, out, progress=progress, log=log, cores=cores, workers=workers)
+
+
+def _fit_and_write(counts: str | Path | CountData, settings: RunSettings, out: str | Path, *, progress: bool,
+                   log: Callable[[str], None], cores: int | None, workers: int | None) -> PipelineOutcome:
+    """:func:`run_pipeline`'s work once the output folder is claimed (same arguments)."""
     from tallyfit.reports import build_report
 
     if cores is None:
@@ -119,6 +152,8 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
                          f"must be a whole number of time units; got {', '.join(f'{h:g}' for h in horizons)}",
                          source="derive.horizons",
                          hint="use whole horizons, and a generation time whose 3 and 5 generations are whole")
+    unit = time_unit(settings.time_unit, np.concatenate([s.times for s in data.series]))
+    log(f"time unit: {unit.reason}")
     log(f"fitting the {family.name} family to {data.n_counts} counts at {len(data.sites)} site(s) "
         f"from {data.source} ({settings.chains} chains × {settings.draws} draws)")
     with warnings.catch_warnings(record=True) as caught:
@@ -135,11 +170,13 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     p_mean = float(post["detection"].mean()) if "detection" in post else (
         float(result.detection) if isinstance(result.detection, float) else 1.0)
     starts = start_sizes(data, p_mean)
+    interval, last_times = forecast_timing(data, whole=environment.varying is not None)
     spec = PushForwardSpec(cap=int(result.cap), sites=tuple(starts), starts=tuple(starts.values()),
                            horizons=horizons,
                            thresholds=tuple(settings.thresholds), generation_time=settings.generation_time,
                            varying=environment.varying, birth_covariates=environment.births,
-                           death_covariates=environment.deaths,
+                           death_covariates=environment.deaths, forecast_steps=FORECAST_STEPS,
+                           forecast_interval=interval, forecast_from=last_times,
                            future_covariates=dict(settings.future_covariates))
     scenarios = (BASELINE,) + tuple(settings.scenarios)
     log(f"pushing {post.sizes['chain'] * post.sizes['draw']} draws × {len(scenarios)} scenario(s) through the "
@@ -162,7 +199,7 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
         generation_time=settings.generation_time, scenarios=[s.as_dict() for s in scenarios], tol=spec.tol,
         cap=int(result.cap),
         data={"source": str(data.source), "sites": list(data.sites), "n_counts": int(data.n_counts),
-              "sha256": data.sha256},
+              "sha256": data.sha256, "time_unit": unit.name, "time_units": unit.plural, "time_unit_reason": unit.reason},
         family={"name": result.family.name, "formula": result.family.formula,
                 "description": result.family.describe(result.model.priors if result.model else None)},
         settings={**settings.as_dict(), "cap": int(result.cap), "cap_rule": result.settings["cap_rule"]},
@@ -176,5 +213,5 @@ def run_pipeline(counts: str | Path | CountData, settings: RunSettings, out: str
     headline = {"extinction": {h: st["mean"] for h, st in base["extinction_probability_all_sites"]["threshold=0"].items()}
                 if "threshold=0" in base["extinction_probability_all_sites"] else {},
                 "iucn": base["iucn_category_probability"],
-                "stationary_exists_probability": base["stationary_exists_probability"]}
+                "stationary_exists_probability": base["stationary_exists_probability"], "time_unit": unit.name}
     return PipelineOutcome(folder, result.passed, warn, headline)

@@ -71,7 +71,9 @@ def make_run_folder(folder: Path, *, chains: int = 2, draws: int = 30, seed: int
     data = cm.data
     starts = {"site": int(data.series[0].largest_counts[-1])}
     spec = PushForwardSpec(cap=CAP, sites=("site",), starts=tuple(starts.values()),
-                           horizons=horizons_with_criterion_e((5.0, 50.0), None), thresholds=(0, 10))
+                           horizons=horizons_with_criterion_e((5.0, 50.0), None), thresholds=(0, 10),
+                           forecast_steps=3, forecast_interval=1.0,
+                           forecast_from=(float(data.series[0].surveyed_times[-1]),))
     ds = push_forward(FAMILY, idata.posterior, spec, SCENARIOS, workers=1)
     record = RunRecord(
         counts_bytes=COUNTS.read_bytes(), idata=idata, derived=ds, derived_summary=summarise(ds),

@@ -75,6 +75,15 @@ def test_report_images_decode_and_caution_is_shown(run_dir):
     assert not re.search(r'(src|href)="https?://', html)  # self-contained
 
 
+def test_calendar_years_speak_in_years(run_dir):
+    # the counts are dated 2010..2019: the run says so and the report speaks in years
+    data = json.loads((run_dir / "summary.json").read_text())["data"]
+    assert data["time_unit"] == "year" and data["time_units"] == "years"
+    assert "calendar years (2010 to 2019)" in data["time_unit_reason"]
+    html = (run_dir / "report.html").read_text()
+    assert "per time unit" not in html and "per year" in html
+
+
 def test_audit_passes_or_reports_diagnostics_and_catches_tampering(run_dir, tmp_path, capsys):
     import shutil
 

@@ -209,3 +209,31 @@ def test_probability_format_for_managers() -> None:
     assert format_probability(3e-9) == "< 0.001%"
     assert format_probability(0.99995) == "> 99.9%"
     assert format_probability(0.0) == "0%" and format_probability(float("nan")) == "—"
+
+
+def test_first_screen_answers_in_a_sentence(run_dir: Path, good_run_dir: Path) -> None:
+    # the headline comes before every section: the risk at the longest horizon with its interval
+    # (read back from derived.nc) and whether the checks passed
+    for folder, verdict in ((run_dir, "failed: treat these numbers as provisional"), (good_run_dir, "Every check passed")):
+        page = _page(folder)
+        m = re.search(r'<p class="headline">(.*?)</p>', page)
+        assert m and page.index('class="headline"') < page.index('id="summary"')
+        text = html.unescape(m.group(1))
+        # horizons 5 and 50 plus criterion E's (VU: 100 years without a generation time)
+        assert "within 100" in text and "90% interval" in text and "criterion E category" in text
+        assert verdict in text
+
+
+def test_forecast_of_the_next_censuses_is_shown(good_run_dir: Path) -> None:
+    # the table's medians are summary.json's, which are the quantiles of derived.nc's forecast pmf
+    page = _page(good_run_dir)
+    assert "How many to expect at the next censuses" in page and "figures/forecast.png" in page
+    summary = json.loads((good_run_dir / "summary.json").read_text())
+    steps = summary["derived"]["baseline"]["forecast"]["site"]
+    derived = xr.open_dataset(good_run_dir / "derived.nc")
+    pmf = derived["forecast_pmf"].sel(scenario="baseline", site="site").values
+    assert len(steps) == pmf.shape[0] == 3
+    for k, step in enumerate(steps):
+        cdf = np.cumsum(pmf[k]) / pmf[k].sum()
+        assert step["q50"] == int(np.argmax(cdf >= 0.5 - 1e-12))
+        assert step["q05"] <= step["q25"] <= step["q50"] <= step["q75"] <= step["q95"]
