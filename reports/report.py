@@ -389,17 +389,22 @@ class _Report:
                  self.extinction_section(), self.scenarios_section(), diagnostics_section(self)]
         parts = [self.summary_section()] + later
         failed = self.audit.failed + self.figure_failures
+        recorded = [str(w) for w in (self.rf.summary_section("warnings") or [])]
+        # a warning the run recorded that a failed check also finds is shown once, naming both sources
+        also = {c.name: [w for w in recorded if w[:60] in c.detail or c.detail[:60] in w] for c in failed}
+        recorded = [w for w in recorded if not any(w in ws for ws in also.values())]
         if failed:
             banner = notice(f"{len(failed)} check{'s' if len(failed) != 1 else ''} failed — read before using "
-                            "these results", [f"{c.name}: {c.detail} ({c.source})" for c in failed], "alert")
+                            "these results", [f"{c.name}: {c.detail} ({c.source}"
+                                              + ("; also recorded by the run in summary.json" if also[c.name] else "")
+                                              + ")" for c in failed], "alert")
         else:
             n = len([c for c in self.audit.checks if c.passed])
             banner = notice(f"All {n} checks that could be made passed (details in section 7).", [], "ok")
         banner += notice("Warnings from the checks", [f"{c.name}: {c.detail} ({c.source})"
                                                       for c in self.audit.warnings], "warn")
         banner += notice("Checks that could not be made", [f"{c.name}: {c.detail}" for c in self.audit.not_made], "warn")
-        banner += notice("Warnings recorded by the run (summary.json)",
-                         [str(w) for w in (self.rf.summary_section("warnings") or [])], "warn")
+        banner += notice("Warnings recorded by the run (summary.json)", recorded, "warn")
         ext = extinction_table(self.derived, self.base, self.level)
         if not ext.empty:
             cats = category_table(self.derived, self.categories).loc[self.base]

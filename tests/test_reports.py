@@ -237,3 +237,18 @@ def test_forecast_of_the_next_censuses_is_shown(good_run_dir: Path) -> None:
         cdf = np.cumsum(pmf[k]) / pmf[k].sum()
         assert step["q50"] == int(np.argmax(cdf >= 0.5 - 1e-12))
         assert step["q05"] <= step["q25"] <= step["q50"] <= step["q75"] <= step["q95"]
+
+
+def test_a_warning_the_run_recorded_and_a_failed_check_are_one_line(run_dir: Path, tmp_path: Path) -> None:
+    # the fit recorded the same finding the audit recomputes (here: the divergent transitions)
+    folder = tmp_path / "run"
+    shutil.copytree(run_dir, folder)
+    audit = audit_run(folder)
+    finding = next(c for c in audit.failed if c.name == "divergences")
+    summary = json.loads((folder / "summary.json").read_text())
+    summary["warnings"] = [finding.detail]
+    (folder / "summary.json").write_text(json.dumps(summary))
+    banner = _banner(html.unescape((build_report(folder)).read_text()))
+    assert banner.count(finding.detail) == 1
+    assert "also recorded by the run in summary.json" in banner
+    assert "Warnings recorded by the run" not in banner
