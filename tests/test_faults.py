@@ -201,6 +201,19 @@ def _kill() -> None:
     os.kill(os.getpid(), signal.SIGKILL)
 
 
+def _kill_halfway(module, name: str) -> None:
+    """Make ``module.write_atomic`` write half of the file ``name`` and then SIGKILL the process."""
+    real = module.write_atomic
+
+    def half(path, data):
+        if Path(path).name == name:
+            raw = data.encode() if isinstance(data, str) else bytes(data)
+            Path(path).write_bytes(raw[: len(raw) // 2])
+            _kill()
+        return real(path, data)
+    module.write_atomic = half
+
+
 def _die_at(point: str, target: Path, record) -> None:
     """Write ``record`` to ``target`` and SIGKILL this process at ``point`` (in a forked child)."""
     if point == "while fitting (folder claimed, nothing staged)":
@@ -209,25 +222,11 @@ def _die_at(point: str, target: Path, record) -> None:
     elif point == "before any file":
         writer.write_atomic = lambda path, data: _kill()
     elif point == "halfway through derived.nc (posterior.nc written)":
-        real = writer.write_atomic
-
-        def half(path, data):
-            if Path(path).name == "derived.nc":
-                Path(path).write_bytes(bytes(data)[: len(data) // 2])
-                _kill()
-            return real(path, data)
-        writer.write_atomic = half
+        _kill_halfway(writer, "derived.nc")
     elif point == "halfway through report.html (figures written)":
         import tallyfit.reports.report as report_module
 
-        real = report_module.write_atomic
-
-        def half(path, data):
-            if Path(path).name == "report.html":
-                Path(path).write_text(data[: len(data) // 2])
-                _kill()
-            return real(path, data)
-        report_module.write_atomic = half
+        _kill_halfway(report_module, "report.html")
     elif point == "between the two final renames":
         real = os.replace
 
