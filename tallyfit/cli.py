@@ -111,7 +111,8 @@ def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettin
     ext = outcome.headline.get("extinction", {})
     if ext:
         _say(args, "posterior mean probability that every site is extinct within: " +
-             ", ".join(f"{_in_units(h, outcome.headline)} {p:.3g}" for h, p in ext.items() if p is not None))
+             ", ".join(f"{outcome.headline['time_unit'].count(float(h))} {p:.3g}" for h, p in ext.items()
+                       if p is not None))
     iucn = outcome.headline.get("iucn", {})
     if iucn:
         _say(args, "criterion E category probabilities: " + ", ".join(f"{k} {v:.2f}" for k, v in iucn.items()))
@@ -119,16 +120,6 @@ def _run_fit(args: argparse.Namespace, counts: Path, out: Path, base: "RunSettin
         print("tallyfit: convergence checks failed; see the report's diagnostics", file=sys.stderr)
         return EXIT_CHECK
     return EXIT_OK
-
-
-def _in_units(horizon: str, headline: dict) -> str:
-    """ "20 years" from a horizon key and the run's time unit (plural "time units" if unnamed)."""
-    unit = headline.get("time_unit", "time unit")
-    try:
-        value = float(horizon)
-    except ValueError:
-        return f"{horizon} {unit}s"
-    return f"{value:g} {unit if value == 1 else (unit if unit.endswith('s') else unit + 's')}"
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:

@@ -213,5 +213,5 @@ def _fit_and_write(counts: str | Path | CountData, settings: RunSettings, out: s
     headline = {"extinction": {h: st["mean"] for h, st in base["extinction_probability_all_sites"]["threshold=0"].items()}
                 if "threshold=0" in base["extinction_probability_all_sites"] else {},
                 "iucn": base["iucn_category_probability"],
-                "stationary_exists_probability": base["stationary_exists_probability"], "time_unit": unit.name}
+                "stationary_exists_probability": base["stationary_exists_probability"], "time_unit": unit}
     return PipelineOutcome(folder, result.passed, warn, headline)
