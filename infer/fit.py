@@ -266,12 +266,12 @@ def compare_families(results: Mapping[str, FitResult] | Sequence[FitResult]) -> 
     Returns:
         az.compare's DataFrame (rank, elpd_loo, p_loo, elpd_diff, weight, se, dse,
         warning, scale) plus max_pareto_k, n_pareto_k_above_0_7 and reliable (no k
-        above 0.7; Vehtari, Gelman & Gabry 2017).
+        above 0.7; Vehtari, Gelman & Gabry 2017): :func:`tallyfit.infer.comparison.loo_table`.
 
     Raises:
         InputError: fewer than two fits, or fits of different observations.
     """
-    import arviz as az
+    from tallyfit.infer.comparison import loo_table
 
     if not isinstance(results, Mapping):
         named: dict[str, FitResult] = {}
@@ -285,22 +285,4 @@ def compare_families(results: Mapping[str, FitResult] | Sequence[FitResult]) -> 
         results = named
     if len(results) < 2:
         raise InputError("compare_families needs at least two fits", source="results")
-    shapes = {label: r.idata.log_likelihood["counts"].sizes["obs"] for label, r in results.items()}
-    if len(set(shapes.values())) != 1:
-        raise InputError(f"the fits have different numbers of observations {shapes}: "
-                         "compare fits of the same data with the same detection model",
-                         source="results")
-    obs = [r.idata.observed_data["counts"].values for r in results.values()]
-    if any(o.shape != obs[0].shape or np.any(o != obs[0]) for o in obs[1:]):
-        raise InputError("the fits are of different data", source="results")
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        table = az.compare({k: r.idata for k, r in results.items()}, ic="loo")
-        ks = {}
-        for label, r in results.items():
-            loo = az.loo(r.idata, pointwise=True)
-            ks[label] = np.asarray(loo.pareto_k.values, dtype=float)
-    table["max_pareto_k"] = [float(np.max(ks[i])) for i in table.index]
-    table["n_pareto_k_above_0_7"] = [int(np.sum(ks[i] > 0.7)) for i in table.index]
-    table["reliable"] = table["n_pareto_k_above_0_7"] == 0
-    return table
+    return loo_table({label: r.idata for label, r in results.items()})

@@ -34,7 +34,8 @@ __all__ = ["CAUTION", "SCHEMA_VERSION", "RUN_FILES", "HASHED_FILES", "FIGURES_DI
            "DERIVED_VARIABLES", "ATTR_HORIZONS", "ATTR_GENERATION_TIME", "ATTR_SCENARIOS", "ATTR_TOL",
            "ATTR_CAP", "ATTR_FAMILY_TEXT", "ATTR_SETTINGS", "CATEGORY_VARIABLE", "PREDICTIVE_VARIABLE",
            "CELL_DIM", "CELL_SITE", "CELL_TIME", "CELL_REPLICATE", "LOGLIK_VARIABLE", "OBS_DIM", "OBS_SITE",
-           "OBS_TIME", "SchemaError", "category_attrs", "categories_from_attrs", "encode_json_attr",
+           "OBS_TIME", "MODELS_DIR", "WEIGHING_FILES", "WEIGHING_HASHED", "WEIGHING_SECTIONS",
+           "WEIGHTS_COLUMNS", "WEIGHED_MODEL_COORD", "SchemaError", "category_attrs", "categories_from_attrs", "encode_json_attr",
            "decode_json_attr", "require_keys"]
 
 #: The caution every summary.json and report carries (README says the same).
@@ -127,6 +128,36 @@ LOGLIK_VARIABLE = "counts"
 OBS_DIM = "obs"
 OBS_SITE = "obs_site"
 OBS_TIME = "obs_time"
+
+#: A weighing folder (``tallyfit weigh``): several models fitted to one counts file, compared.
+#: MODELS_DIR/<label>/ holds each model's complete run folder; WEIGHING_FILES are written
+#: last, weighing.json after the others (it records their SHA-256), so a folder without a
+#: readable weighing.json is not a finished weighing.
+MODELS_DIR = "models"
+WEIGHING_FILES: tuple[str, ...] = ("weights.csv", "weighed.nc", "report.html", "weighing.json")
+#: Files whose SHA-256 weighing.json records.
+WEIGHING_HASHED: tuple[str, ...] = ("weights.csv", "weighed.nc")
+#: weighing.json: section -> what it holds.
+WEIGHING_SECTIONS: dict[str, str] = {
+    "schema_version": "SCHEMA_VERSION of the writer",
+    "caution": "the caution every report carries",
+    "data": "source, sha256, sites, n_counts, time_unit, time_units",
+    "settings": "the run settings shared by every model",
+    "models": "{label: {family, varying_years, folder (relative), status, detail, diagnostics_passed, "
+              "baseline (the model's summary.json derived entry of the baseline scenario)}}",
+    "weights": "{label: stacking weight} of the compared models",
+    "weighed": "summaries of the weighed draws, as summary.json's derived section",
+    "dependence": "sentence (how much the answer depends on the model) and the numbers behind it",
+    "warnings": "sentences the user must read",
+    "hashes": "{file: SHA-256} of WEIGHING_HASHED",
+}
+#: weights.csv columns, one row per model asked for (compared or not).
+WEIGHTS_COLUMNS: tuple[str, ...] = ("model", "family", "varying_years", "status", "detail", "rank", "elpd_loo",
+                                    "se", "elpd_diff", "dse", "p_loo", "weight", "max_pareto_k",
+                                    "n_pareto_k_above_0_7", "diagnostics_passed", "folder")
+#: weighed.nc: the per-draw variables of DERIVED_VARIABLES (draws resampled by weight) and,
+#: along ``draw``, the coordinate naming the model each draw came from.
+WEIGHED_MODEL_COORD = "model"
 
 
 class SchemaError(ValueError):

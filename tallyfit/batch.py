@@ -6,8 +6,10 @@ recorded and the others go on; a rerun skips sites whose run folder is complete.
 """
 from __future__ import annotations
 
+import os
 import re
 import traceback
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any, Callable
 
@@ -35,13 +37,24 @@ def is_complete(folder: Path) -> bool:
     return folder.is_dir() and all((folder / name).is_file() for name in RUN_FILES)
 
 
-def _run_site(site: str, table: pd.DataFrame, settings: RunSettings, folder: str) -> dict[str, Any]:
-    """Fit one site in a worker; never raises (a failure is returned as a status)."""
+def fit_task(name: str, counts: pd.DataFrame | str, settings: RunSettings, folder: str) -> dict[str, Any]:
+    """Fit one counts table into one run folder, in a worker; never raises (a failure is a status).
+
+    Args:
+        name: what the row is about (a site, or a model of ``tallyfit weigh``).
+        counts: the counts as a table, or the path of a counts CSV.
+        settings: run settings.
+        folder: the run folder to write.
+
+    Returns:
+        a row: name, folder, status ("ok" or "failed"), detail, diagnostics_passed and
+        the headline numbers.
+    """
     from tallyfit.pipeline import run_pipeline
 
-    row: dict[str, Any] = {"site": site, "folder": folder}
+    row: dict[str, Any] = {"site": name, "folder": folder}
     try:
-        data = load_counts(table)
+        data = load_counts(counts) if isinstance(counts, pd.DataFrame) else counts
         outcome = run_pipeline(data, settings, folder, progress=False, log=lambda s: None, cores=1, workers=1)
         base = outcome.headline
         ext = base.get("extinction", {})
@@ -54,10 +67,50 @@ def _run_site(site: str, table: pd.DataFrame, settings: RunSettings, folder: str
         row.update(status="failed", detail=f"bad input: {exc}")
     except OSError as exc:
         row.update(status="failed", detail=f"cannot write the run folder: {exc}")
-    except Exception as exc:  # one site's trouble must not stop the others; a fault in tallyfit itself
+    except Exception as exc:  # one fit's trouble must not stop the others; a fault in tallyfit itself
         row.update(status="failed", detail=f"internal error (please report): {type(exc).__name__}: {exc} | "
                    + traceback.format_exc(limit=3).replace("\n", " "))
     return row
+
+
+def run_fits(tasks: Mapping[str, tuple[pd.DataFrame | str, RunSettings, str]], *, scheduler: str | None = None,
+             n_workers: int | None = None, on_result: Callable[[str, dict[str, Any]], None]) -> None:
+    """Run :func:`fit_task` for every task on a Dask cluster, one process per fit.
+
+    Args:
+        tasks: {name: (counts, settings, folder)}.
+        scheduler: address of a running Dask scheduler; default a LocalCluster.
+        n_workers: workers of the LocalCluster (default: the machine's cores, at most one
+            per task).
+        on_result: called with (name, row) as each fit ends, in the order they end; a
+            worker that died gives a "failed" row naming why.
+    """
+    from dask.distributed import Client, LocalCluster, as_completed
+
+    if not tasks:
+        return
+    cluster = None
+    if scheduler is None:
+        workers = n_workers or min(len(tasks), os.cpu_count() or 1)
+        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None)
+        client = Client(cluster)
+    else:
+        client = Client(scheduler)
+    try:
+        futures = {client.submit(fit_task, name, *task, key=f"tallyfit-fit-{i}", pure=False): name
+                   for i, (name, task) in enumerate(tasks.items())}
+        for fut in as_completed(futures):
+            name = futures[fut]
+            try:
+                row = fut.result()
+            except Exception as exc:  # a worker that died
+                row = {"site": name, "folder": tasks[name][2], "status": "failed",
+                       "detail": f"worker failed: {type(exc).__name__}: {exc}"}
+            on_result(name, row)
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
 
 
 def run_batch(counts: str | Path, settings: RunSettings, out: str | Path, *, by: str = "site",
@@ -80,8 +133,6 @@ def run_batch(counts: str | Path, settings: RunSettings, out: str | Path, *, by:
     Raises:
         InputError: the counts file is malformed or has no such column (nothing is fitted).
     """
-    from dask.distributed import Client, LocalCluster, as_completed
-
     data: CountData = load_counts(counts, site_column=by)
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -107,29 +158,11 @@ def run_batch(counts: str | Path, settings: RunSettings, out: str | Path, *, by:
         write_atomic(out / "index.csv", index.to_csv(index=False))
         return index
 
-    if todo:
-        cluster = None
-        if scheduler is None:
-            cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
-                                   dashboard_address=None)
-            client = Client(cluster)
-        else:
-            client = Client(scheduler)
-        try:
-            futures = {client.submit(_run_site, site, table[table["site"] == site].reset_index(drop=True),
-                                     settings, str(folders[site]), key=f"tallyfit-site-{i}", pure=False): site
-                       for i, site in enumerate(todo)}
-            for fut in as_completed(futures):
-                site = futures[fut]
-                try:
-                    rows[site] = fut.result()
-                except Exception as exc:  # a worker that died
-                    rows[site] = {"site": site, "folder": str(folders[site]), "status": "failed",
-                                  "detail": f"worker failed: {type(exc).__name__}: {exc}"}
-                log(f"site {site}: {rows[site]['status']}")
-                write_index()
-        finally:
-            client.close()
-            if cluster is not None:
-                cluster.close()
+    def done(site: str, row: dict[str, Any]) -> None:
+        rows[site] = row
+        log(f"site {site}: {row['status']}")
+        write_index()
+
+    run_fits({site: (table[table["site"] == site].reset_index(drop=True), settings, str(folders[site]))
+              for site in todo}, scheduler=scheduler, n_workers=n_workers, on_result=done)
     return write_index()

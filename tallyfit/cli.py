@@ -88,6 +88,18 @@ def _parser() -> argparse.ArgumentParser:
     sp.add_argument("--workers", type=int, help="local cluster workers (default: the machine's cores)")
     fit_options(sp)
 
+    sp = sub.add_parser("weigh", help="fit several models to one counts file and weigh them against each other "
+                                      "(PSIS-LOO, stacking weights, the weighed extinction risk)")
+    sp.add_argument("counts", type=Path, help="counts CSV: columns time, count [, site, survey]")
+    sp.add_argument("--models", nargs="+", required=True, metavar="MODEL",
+                    help="rate families to compare, each optionally with +years for good and bad years, e.g. "
+                         "--models linear logistic logistic+years")
+    sp.add_argument("--out", type=Path, required=True,
+                    help="weighing folder: models/ (one run folder each), weights.csv, weighed.nc, report.html")
+    sp.add_argument("--scheduler", help="address of a running Dask scheduler (default: a local cluster)")
+    sp.add_argument("--workers", type=int, help="local cluster workers (default: the cores, at most one per model)")
+    fit_options(sp)
+
     sp = sub.add_parser("audit", help="re-check a run folder; exit 1 if anything fails")
     sp.add_argument("run", type=Path, help="run folder")
     sp.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
@@ -179,6 +191,28 @@ def _cmd_batch(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_weigh(args: argparse.Namespace) -> int:
+    from tallyfit.weigh import parse_models, run_weighing
+
+    settings = _settings_from_args(args)
+    years = "births" if settings.varying_years == "none" else settings.varying_years
+    models = parse_models(args.models, years)
+    outcome = run_weighing(args.counts, settings.with_options(varying_years="none"), args.out, models,
+                           scheduler=args.scheduler, n_workers=args.workers,
+                           log=(lambda s: None) if args.quiet else (lambda s: print(s, flush=True)))
+    shown = outcome.table[["model", "status", "elpd_loo", "se", "elpd_diff", "weight", "max_pareto_k",
+                           "diagnostics_passed"]]
+    _say(args, shown.to_string(index=False))
+    _say(args, outcome.sentence)
+    for w in outcome.warnings:
+        print(f"WARNING: {w}", file=sys.stderr)
+    _say(args, f"report: {outcome.folder / 'report.html'}")
+    if not outcome.passed:
+        print("tallyfit: not every model fitted and passed its checks; see the report", file=sys.stderr)
+        return EXIT_CHECK
+    return EXIT_OK
+
+
 def _cmd_audit(args: argparse.Namespace) -> int:
     from tallyfit.runfolder.audit import audit_run
 
@@ -249,7 +283,8 @@ def _os_error_message(exc: OSError) -> str:
 
 
 COMMANDS = {"demo": _cmd_demo, "fit": lambda a: _run_fit(a, a.counts, a.out), "solve": _cmd_solve,
-            "simulate": _cmd_simulate, "audit": _cmd_audit, "batch": _cmd_batch}
+            "simulate": _cmd_simulate, "audit": _cmd_audit, "batch": _cmd_batch,
+            "weigh": _cmd_weigh}
 
 
 def main(argv: Sequence[str] | None = None) -> int:
