@@ -225,5 +225,6 @@ def check_no_return_from_zero(data: CountData, family: RateFamily) -> None:
                 f"{t[i + 1]:g}: without immigration size 0 is absorbing, so these exact counts "
                 f"are impossible under the {family.name} family", source=data.source,
                 column="count",
-                hint="include immigration (e.g. get_family(name, immigration=True)), or model "
-                     "counting error with a detection probability")
+                hint="include immigration (drop --no-immigration, or immigration = true in [fit]; from "
+                     "Python get_family(name, immigration=True)), or model counting error with a "
+                     "detection probability (--detection)")
