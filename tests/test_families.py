@@ -267,16 +267,22 @@ def test_describe_states_formula_and_priors():
 
 
 # --------------------------------------------------------------------------- sampler coordinates
-@pytest.mark.parametrize("immigration", [False, True])
-def test_regulated_coordinates_invert_and_jacobian_matches_finite_differences(immigration):
+@pytest.mark.parametrize("which", ["regulated", "regulated+immigration", "immigration"])
+def test_sampler_coordinates_invert_and_jacobian_matches_finite_differences(which):
     # change of variables (common practice): the stated log|det ∂θ/∂y| against the
     # log-determinant (numpy.linalg.slogdet) of a central-difference Jacobian
-    from tallyfit.infer.families import NUMPY, RegulatedCoordinates
+    from tallyfit.infer.families import NUMPY, ImmigrationCoordinates, RegulatedCoordinates
 
-    coords = RegulatedCoordinates(count_scale=SCALE.count_scale, immigration=immigration)
-    theta = {"birth_rate": 0.9, "death_rate": 0.2, "carrying_capacity": 45.0}
-    if immigration:
-        theta["immigration"] = 2.5
+    if which == "immigration":
+        coords = ImmigrationCoordinates(count_scale=SCALE.count_scale)
+        theta = {"birth_rate": 0.9, "immigration": 2.5}
+        assert Linear(immigration=True).sampling_coordinates(SCALE).replaces == coords.replaces
+        assert Linear(immigration=False).sampling_coordinates(SCALE) is None
+    else:
+        coords = RegulatedCoordinates(count_scale=SCALE.count_scale, immigration=which != "regulated")
+        theta = {"birth_rate": 0.9, "death_rate": 0.2, "carrying_capacity": 45.0}
+        if which != "regulated":
+            theta["immigration"] = 2.5
     y = coords.from_parameters(theta)
     back, log_jac = coords.to_parameters(NUMPY, y)
     for k, v in theta.items():
@@ -329,7 +335,8 @@ def test_logistic_prior_draws_are_the_prior_restricted_to_b_above_d():
     assert stats.ks_2samp(draws["birth_rate"], ref).pvalue > 0.01
 
 
-def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian():
+@pytest.mark.parametrize("family", ["logistic", "linear"])
+def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian(family):
     # the model's log density without the likelihood, at a point given in sampler
     # coordinates, equals Σ log p_k(θ_k) (scipy.stats densities) + log|det ∂θ/∂y|
     import pytensor as _pt
@@ -339,14 +346,15 @@ def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian():
     from tallyfit.infer.model import build_count_model
 
     data = CountData.single(np.arange(8.0), np.array([20, 24, 27, 31, 30, 33, 29, 32.0]))
-    cm = build_count_model(data, Logistic(immigration=True))
+    cm = build_count_model(data, Logistic(immigration=True) if family == "logistic" else Linear(immigration=True))
     coords = cm.family.sampling_coordinates(cm.scale)
     theta = {"birth_rate": 0.7, "death_rate": 0.25, "carrying_capacity": 35.0, "immigration": 0.8}
+    theta = {k: v for k, v in theta.items() if k in coords.replaces}
     y = coords.from_parameters(theta)
     model = cm.model
     graph = model.replace_rvs_by_values([model["coordinate_prior"]])[0]
     fn = _pt.function(model.value_vars, graph, on_unused_input="ignore")
-    value = float(fn(*[y[v.name] for v in model.value_vars]))
+    value = float(fn(*[y.get(v.name, 0.0) for v in model.value_vars]))  # the potential holds only y
     _, log_jac = coords.to_parameters(NUMPY, y)
     expected = sum(scipy_prior(cm.priors[k]).logpdf(v) for k, v in theta.items()) + float(log_jac)
     assert value == pytest.approx(expected, rel=1e-10)

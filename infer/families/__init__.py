@@ -37,7 +37,7 @@ from tallyfit.infer.errors import InputError
 from tallyfit.infer.families.allee import Allee
 from tallyfit.infer.families.backend import NUMPY, Backend, NumpyBackend, TensorBackend, tensor_backend
 from tallyfit.infer.families.base import RateFamily
-from tallyfit.infer.families.coordinates import RegulatedCoordinates, SamplingCoordinates
+from tallyfit.infer.families.coordinates import ImmigrationCoordinates, RegulatedCoordinates, SamplingCoordinates
 from tallyfit.infer.families.linear import Linear
 from tallyfit.infer.families.logistic import Logistic
 from tallyfit.infer.families.parameters import ParameterSpec, default_rate_priors
@@ -54,6 +54,7 @@ __all__ = [
     "ParameterSpec",
     "SamplingCoordinates",
     "RegulatedCoordinates",
+    "ImmigrationCoordinates",
     "RateFamily",
     "Linear",
     "Logistic",

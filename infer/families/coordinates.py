@@ -1,7 +1,8 @@
 """Sampler coordinates: the unconstrained space NUTS moves in, where a family declares one.
 
 :class:`SamplingCoordinates` is the interface the model builder uses;
-:class:`RegulatedCoordinates` are the logistic family's.
+:class:`RegulatedCoordinates` are the logistic family's, :class:`ImmigrationCoordinates`
+the linear family's when it has immigration.
 """
 from __future__ import annotations
 
@@ -14,7 +15,7 @@ from tallyfit.infer.errors import InputError
 
 from tallyfit.infer.families.backend import Backend
 
-__all__ = ["SamplingCoordinates", "RegulatedCoordinates"]
+__all__ = ["SamplingCoordinates", "RegulatedCoordinates", "ImmigrationCoordinates"]
 
 
 class SamplingCoordinates(ABC):
@@ -190,3 +191,62 @@ class RegulatedCoordinates(SamplingCoordinates):
         if not float(q["death_rate"]) < float(q["birth_rate"]):
             q["death_rate"] = 0.5 * float(q["birth_rate"])
         return self.from_parameters(q)
+
+
+class ImmigrationCoordinates(SamplingCoordinates):
+    """Coordinates for λ_n = b·n + ι: the births at the median count and the immigrants' share.
+
+    The counts determine well the births at the typical size c, B = b·c + ι, and say
+    little about how B splits into local births and immigrants: in (log b, log ι) that
+    weak direction is curved (b falls as ι rises at fixed B), which a dense mass matrix
+    cannot straighten and which gave divergent transitions on easy data. The coordinates
+
+        y_B = log B,  y_φ = logit(ι/B),  so  b = B·(1 − φ)/c,  ι = B·φ,
+
+    make it straight. The other parameters (d) keep their own scales. The Jacobian of
+    (y_B, y_φ) ↦ (b, ι) is [[b, −b·φ], [ι, ι·(1 − φ)]], so log |det| = log b + log ι.
+
+    Args:
+        count_scale: c, the median count.
+    """
+
+    names = ("log_births_at_median", "logit_immigrant_share")
+    replaces = ("birth_rate", "immigration")
+    description = ("b and ι sampled as log B and logit φ, with B = b·c + ι the births at the median count c "
+                   "and φ = ι/B the immigrants' share")
+
+    def __init__(self, count_scale: float) -> None:
+        self.count_scale = float(count_scale)
+
+    def to_parameters(self, xp: Backend, y: Mapping[str, Any]) -> tuple[dict[str, Any], Any]:
+        """b and ι at coordinates ``y``, and log |det ∂(b, ι)/∂y| = log b + log ι.
+
+        Args:
+            xp: the backend (:mod:`.backend`).
+            y: {coordinate name: value} for every name in ``names``.
+
+        Returns:
+            ({"birth_rate": b, "immigration": ι}, log-Jacobian).
+        """
+        births = xp.exp(y["log_births_at_median"])
+        b = births * xp.sigmoid(-y["logit_immigrant_share"]) / self.count_scale
+        iota = births * xp.sigmoid(y["logit_immigrant_share"])
+        return {"birth_rate": b, "immigration": iota}, xp.log(b) + xp.log(iota)
+
+    def from_parameters(self, p: Mapping[str, float]) -> dict[str, float]:
+        """The coordinates of b and ι.
+
+        Args:
+            p: {"birth_rate": b, "immigration": ι}.
+
+        Returns:
+            {coordinate name: float}.
+
+        Raises:
+            InputError: b or ι not > 0.
+        """
+        b, iota = float(p["birth_rate"]), float(p["immigration"])
+        if not (b > 0.0 and iota > 0.0):
+            raise InputError(f"b = {b:g}, ι = {iota:g} is outside b > 0, ι > 0", source="coordinates")
+        return {"log_births_at_median": math.log(b * self.count_scale + iota),
+                "logit_immigrant_share": math.log(iota / (b * self.count_scale))}

@@ -8,6 +8,7 @@ import numpy as np
 
 from tallyfit.infer.families.backend import Backend
 from tallyfit.infer.families.base import RateFamily
+from tallyfit.infer.families.coordinates import ImmigrationCoordinates, SamplingCoordinates
 from tallyfit.infer.families.parameters import ParameterSpec, default_rate_priors
 from tallyfit.infer.families.scale import DataScale
 
@@ -29,6 +30,9 @@ class Linear(RateFamily):
     Beyond any cap the rates keep growing linearly, so a stationary law exists only
     with immigration and b < d (ratio λ_n/μ_{n+1} → b/d).
 
+    With immigration the sampler works in :class:`ImmigrationCoordinates` (the births at
+    the median count and the immigrants' share); the priors are still those above.
+
     Args:
         immigration: include ι.
     """
@@ -46,3 +50,7 @@ class Linear(RateFamily):
     def _per_capita(self, xp: Backend, p: Mapping[str, Any], n: Any,
                     sizes: np.ndarray) -> tuple[Any, Any]:
         return p["birth_rate"] + 0.0 * n, p["death_rate"] + 0.0 * n
+
+    def sampling_coordinates(self, scale: DataScale) -> SamplingCoordinates | None:
+        """:class:`ImmigrationCoordinates` at the data's median count when ι is a parameter."""
+        return ImmigrationCoordinates(scale.count_scale) if self.immigration else None
