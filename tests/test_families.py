@@ -267,7 +267,7 @@ def test_describe_states_formula_and_priors():
 
 
 # --------------------------------------------------------------------------- sampler coordinates
-@pytest.mark.parametrize("which", ["regulated", "regulated+immigration", "immigration"])
+@pytest.mark.parametrize("which", ["regulated", "regulated+immigration", "immigration", "allee+immigration"])
 def test_sampler_coordinates_invert_and_jacobian_matches_finite_differences(which):
     # change of variables (common practice): the stated log|det ∂θ/∂y| against the
     # log-determinant (numpy.linalg.slogdet) of a central-difference Jacobian
@@ -278,6 +278,11 @@ def test_sampler_coordinates_invert_and_jacobian_matches_finite_differences(whic
         theta = {"birth_rate": 0.9, "immigration": 2.5}
         assert Linear(immigration=True).sampling_coordinates(SCALE).replaces == coords.replaces
         assert Linear(immigration=False).sampling_coordinates(SCALE) is None
+    elif which == "allee+immigration":
+        coords = ImmigrationCoordinates(count_scale=SCALE.count_scale, threshold=True)
+        theta = {"birth_rate": 0.9, "immigration": 2.5, "allee_threshold": 6.0}
+        assert Allee(immigration=True).sampling_coordinates(SCALE).replaces == coords.replaces
+        assert Allee(immigration=False).sampling_coordinates(SCALE) is None
     else:
         coords = RegulatedCoordinates(count_scale=SCALE.count_scale, immigration=which != "regulated")
         theta = {"birth_rate": 0.9, "death_rate": 0.2, "carrying_capacity": 45.0}
@@ -335,7 +340,7 @@ def test_logistic_prior_draws_are_the_prior_restricted_to_b_above_d():
     assert stats.ks_2samp(draws["birth_rate"], ref).pvalue > 0.01
 
 
-@pytest.mark.parametrize("family", ["logistic", "linear"])
+@pytest.mark.parametrize("family", ["logistic", "linear", "allee"])
 def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian(family):
     # the model's log density without the likelihood, at a point given in sampler
     # coordinates, equals Σ log p_k(θ_k) (scipy.stats densities) + log|det ∂θ/∂y|
@@ -346,9 +351,10 @@ def test_model_prior_in_coordinates_is_the_family_prior_with_jacobian(family):
     from tallyfit.infer.model import build_count_model
 
     data = CountData.single(np.arange(8.0), np.array([20, 24, 27, 31, 30, 33, 29, 32.0]))
-    cm = build_count_model(data, Logistic(immigration=True) if family == "logistic" else Linear(immigration=True))
+    cm = build_count_model(data, {"logistic": Logistic, "linear": Linear, "allee": Allee}[family](immigration=True))
     coords = cm.family.sampling_coordinates(cm.scale)
-    theta = {"birth_rate": 0.7, "death_rate": 0.25, "carrying_capacity": 35.0, "immigration": 0.8}
+    theta = {"birth_rate": 0.7, "death_rate": 0.25, "carrying_capacity": 35.0, "immigration": 0.8,
+             "allee_threshold": 4.0}
     theta = {k: v for k, v in theta.items() if k in coords.replaces}
     y = coords.from_parameters(theta)
     model = cm.model

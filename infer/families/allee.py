@@ -8,6 +8,7 @@ import numpy as np
 
 from tallyfit.infer.families.backend import Backend
 from tallyfit.infer.families.base import RateFamily
+from tallyfit.infer.families.coordinates import ImmigrationCoordinates, SamplingCoordinates
 from tallyfit.infer.families.parameters import ParameterSpec, default_rate_priors
 from tallyfit.infer.families.priors import lognormal_prior
 from tallyfit.infer.families.scale import DataScale
@@ -38,6 +39,9 @@ class Allee(RateFamily):
     If b·K/(A + K) < d, c < 0 and per-capita death is clipped at zero as in the
     logistic family. Beyond any cap the formula continues (quadratic deaths when c > 0).
 
+    With immigration the sampler works in :class:`ImmigrationCoordinates` (the births at
+    the median count, the immigrants' share and log A); the priors are still those above.
+
     Args:
         immigration: include ι.
     """
@@ -67,3 +71,7 @@ class Allee(RateFamily):
                       p["allee_threshold"])
         c = (b * k / (a + k) - d) / k
         return b * n / (a + n), xp.maximum(d + c * n, 0.0)
+
+    def sampling_coordinates(self, scale: DataScale) -> SamplingCoordinates | None:
+        """:class:`ImmigrationCoordinates` (with A) at the data's median count when ι is a parameter."""
+        return ImmigrationCoordinates(scale.count_scale, threshold=True) if self.immigration else None

@@ -194,59 +194,81 @@ class RegulatedCoordinates(SamplingCoordinates):
 
 
 class ImmigrationCoordinates(SamplingCoordinates):
-    """Coordinates for λ_n = b·n + ι: the births at the median count and the immigrants' share.
+    """Coordinates for λ_n = b·g(n)·n + ι: the births at the median count and the immigrants' share.
 
-    The counts determine well the births at the typical size c, B = b·c + ι, and say
-    little about how B splits into local births and immigrants: in (log b, log ι) that
-    weak direction is curved (b falls as ι rises at fixed B), which a dense mass matrix
-    cannot straighten and which gave divergent transitions on easy data. The coordinates
+    The counts determine well the births at the typical size c, B = b·g(c)·c + ι, and
+    say little about how B splits into local births and immigrants: in (log b, log ι)
+    that weak direction is curved (b falls as ι rises at fixed B), which a dense mass
+    matrix cannot straighten and which gave divergent transitions on easy data. The
+    coordinates
 
-        y_B = log B,  y_φ = logit(ι/B),  so  b = B·(1 − φ)/c,  ι = B·φ,
+        y_B = log B,  y_φ = logit(ι/B),  so  b = B·(1 − φ)/(g(c)·c),  ι = B·φ,
 
-    make it straight. The other parameters (d) keep their own scales. The Jacobian of
-    (y_B, y_φ) ↦ (b, ι) is [[b, −b·φ], [ι, ι·(1 − φ)]], so log |det| = log b + log ι.
+    make it straight. Linear family: g = 1. Allee family (``threshold=True``):
+    g(n) = n/(A + n) and A is sampled as y_A = log A with them. Every other parameter
+    keeps its own scale. The Jacobian is block-triangular (A depends on y_A only) with
+    the (b, ι) block [[b, −b·φ], [ι, ι·(1 − φ)]], so
+
+        log |det ∂θ/∂y| = log b + log ι  (+ log A with the threshold).
 
     Args:
         count_scale: c, the median count.
+        threshold: the family has an Allee threshold A ("allee_threshold").
     """
 
-    names = ("log_births_at_median", "logit_immigrant_share")
-    replaces = ("birth_rate", "immigration")
-    description = ("b and ι sampled as log B and logit φ, with B = b·c + ι the births at the median count c "
+    description = ("b and ι sampled as log B and logit φ, with B the births at the median count c "
                    "and φ = ι/B the immigrants' share")
 
-    def __init__(self, count_scale: float) -> None:
+    def __init__(self, count_scale: float, threshold: bool = False) -> None:
         self.count_scale = float(count_scale)
+        self.threshold = bool(threshold)
+        self.names = ("log_births_at_median", "logit_immigrant_share") + (
+            ("log_allee_threshold",) if threshold else ())
+        self.replaces = ("birth_rate", "immigration") + (("allee_threshold",) if threshold else ())
 
     def to_parameters(self, xp: Backend, y: Mapping[str, Any]) -> tuple[dict[str, Any], Any]:
-        """b and ι at coordinates ``y``, and log |det ∂(b, ι)/∂y| = log b + log ι.
+        """b and ι (and A) at coordinates ``y``, and the log-Jacobian of the class docstring.
 
         Args:
             xp: the backend (:mod:`.backend`).
             y: {coordinate name: value} for every name in ``names``.
 
         Returns:
-            ({"birth_rate": b, "immigration": ι}, log-Jacobian).
+            ({parameter name: value}, log |det ∂θ/∂y|).
         """
+        c = self.count_scale
         births = xp.exp(y["log_births_at_median"])
-        b = births * xp.sigmoid(-y["logit_immigrant_share"]) / self.count_scale
-        iota = births * xp.sigmoid(y["logit_immigrant_share"])
-        return {"birth_rate": b, "immigration": iota}, xp.log(b) + xp.log(iota)
+        out: dict[str, Any] = {}
+        per_head = c  # b·g(c)·c = b·per_head
+        if self.threshold:
+            out["allee_threshold"] = xp.exp(y["log_allee_threshold"])
+            per_head = c * c / (out["allee_threshold"] + c)
+        out["birth_rate"] = births * xp.sigmoid(-y["logit_immigrant_share"]) / per_head
+        out["immigration"] = births * xp.sigmoid(y["logit_immigrant_share"])
+        log_jac = xp.log(out["birth_rate"]) + xp.log(out["immigration"])
+        if self.threshold:
+            log_jac = log_jac + y["log_allee_threshold"]
+        return out, log_jac
 
     def from_parameters(self, p: Mapping[str, float]) -> dict[str, float]:
-        """The coordinates of b and ι.
+        """The coordinates of b and ι (and A).
 
         Args:
-            p: {"birth_rate": b, "immigration": ι}.
+            p: {parameter name: value} for every name in ``replaces``.
 
         Returns:
             {coordinate name: float}.
 
         Raises:
-            InputError: b or ι not > 0.
+            InputError: b, ι (or A) not > 0.
         """
         b, iota = float(p["birth_rate"]), float(p["immigration"])
-        if not (b > 0.0 and iota > 0.0):
+        a = float(p["allee_threshold"]) if self.threshold else 0.0
+        if not (b > 0.0 and iota > 0.0 and (a > 0.0 or not self.threshold)):
             raise InputError(f"b = {b:g}, ι = {iota:g} is outside b > 0, ι > 0", source="coordinates")
-        return {"log_births_at_median": math.log(b * self.count_scale + iota),
-                "logit_immigrant_share": math.log(iota / (b * self.count_scale))}
+        c = self.count_scale
+        local = b * c * c / (a + c) if self.threshold else b * c
+        out = {"log_births_at_median": math.log(local + iota), "logit_immigrant_share": math.log(iota / local)}
+        if self.threshold:
+            out["log_allee_threshold"] = math.log(a)
+        return out
