@@ -19,6 +19,16 @@ Gradients use the adjoint of the step recursion with Λ held fixed (P(t) does no
 on Λ): with α_a = e_m^T B^a and γ_a = Σ_b w_{a+1+b} B^b g,
 ∂(e_m^T P g)/∂B_ij = Σ_a α_a[i] γ_a[j]; only the tridiagonal entries are needed.
 
+Far jumps (a probability far below the smallest double, ~1e-308) are swept in log space
+(_pairs_log_kernel, chosen per group by ``group_log_space``): every entry of α_k and of
+the adjoint γ_a is kept as its logarithm, the Poisson weights are exact logarithms on both
+sides of the mode, and the number of steps is chosen during the sweep so that the Poisson
+mass cut off is within a given fraction of each end's own probability — the mass towards
+a far endpoint lies in the right tail of the Poisson weights. Nothing underflows, so the
+probability, its window leaks (the error bound) and the gradient of Σ w log P all keep
+their relative accuracy; the price is a few tens of times the cost of a plain step, so
+only the groups that need it pay it.
+
 Everything that loops over steps is compiled with numba.
 """
 from __future__ import annotations
@@ -415,6 +425,287 @@ def _pairs_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_tail, g_bs, g_ds
             out_gd[off + j] *= inv
 
 
+# --------------------------------------------------------------------------------------
+# log-space sweeps: every entry of α_k (and of the adjoint γ_a) kept as its logarithm
+# --------------------------------------------------------------------------------------
+@njit(cache=True, nogil=True, inline="always")
+def _lae(a, b):
+    """log(e^a + e^b), exact for -inf."""
+    if a < b:
+        a, b = b, a
+    if b == -np.inf:
+        return a
+    return a + math.log1p(math.exp(b - a))
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _lse3(a, b, c):
+    """log(e^a + e^b + e^c), exact for -inf."""
+    if a >= b and a >= c:
+        m, u, v = a, b, c
+    elif b >= c:
+        m, u, v = b, a, c
+    else:
+        m, u, v = c, a, b
+    if m == -np.inf:
+        return m
+    return m + math.log(1.0 + math.exp(u - m) + math.exp(v - m))
+
+
+@njit(cache=True, nogil=True)
+def _log_poisson_weights(x, size):
+    """log Pois(k; x) for k = 0..size-1, by the ratio recursion from the mode.
+
+    The recursion from the mode keeps each weight to a few ulps of its logarithm; the
+    weights are then shifted so that the bulk (everything up to where the tail is below
+    1e-300) sums to 1, which removes the rounding of the mode's own lgamma.
+    """
+    K0, _ = _poisson_extent(x, 1e-300)
+    n = max(size, K0 + 2)
+    lw = np.empty(n)
+    mode = int(math.floor(x))
+    lx = math.log(x)
+    lw[mode] = mode * lx - x - math.lgamma(mode + 1.0)
+    for k in range(mode + 1, n):
+        lw[k] = lw[k - 1] + lx - math.log(k)
+    for k in range(mode - 1, -1, -1):
+        lw[k] = lw[k + 1] + math.log(k + 1.0) - lx
+    top = lw[mode]
+    s = 0.0
+    for k in range(K0 + 1):
+        s += math.exp(lw[k] - top)
+    shift = top + math.log(s)
+    for k in range(n):
+        lw[k] -= shift
+    return lw
+
+
+@njit(cache=True, nogil=True)
+def _extend_log_weights(lw, x, size):
+    """lw continued by the ratio recursion to at least ``size`` entries (doubling)."""
+    n = lw.shape[0]
+    if size <= n:
+        return lw
+    m = max(size, 2 * n)
+    out = np.empty(m)
+    out[:n] = lw
+    lx = math.log(x)
+    for k in range(n, m):
+        out[k] = out[k - 1] + lx - math.log(k)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _log_step_forward(a, b, lp, lq, ld, n0, n1, W):
+    """b[n0..n1] = log of (e^a B) on the window, a and b in log space (-inf outside the support)."""
+    for j in range(n0, n1 + 1):
+        x0 = a[j] + ld[j]
+        x1 = a[j - 1] + lp[j - 1] if j > 0 else -np.inf
+        x2 = a[j + 1] + lq[j + 1] if j < W - 1 else -np.inf
+        b[j] = _lse3(x0, x1, x2)
+
+
+@njit(cache=True, nogil=True)
+def _pairs_log_kernel(birth, death, N, g_start, g_lo, g_hi, g_dt, g_rel, g_kmax, g_bs, g_ds,
+                      e_ptr, e_end, e_mult, want_grad,
+                      out_lprob, out_lleak_lo, out_lleak_hi, out_ldrop, out_lam, out_steps,
+                      g_off, out_gb, out_gd):
+    """The sweeps of _pairs_kernel with every vector entry kept as its logarithm.
+
+    Nothing underflows, so the probability of a far jump (far below the smallest double)
+    keeps its relative accuracy, and so do the window leaks that bound it. The Poisson
+    weights are exact logarithms on both sides of the mode (no left cut), and the number
+    of steps is chosen during the sweep: it stops at the first K (past Λt) where the
+    Poisson mass beyond K is at most g_rel[g] times the smallest end probability so far
+    (which only grows), so the cut mass is within g_rel of every end's final probability
+    however far in the right tail the mass towards the endpoint lies; g_kmax[g] caps K.
+    Outputs are logarithms: out_lprob per end, out_lleak_lo/hi and out_ldrop per group.
+    Gradients (of Σ_e mult_e log P_e, mult_e ≥ 0) are the adjoint of the computed sum,
+    with γ_a in log space too; each term α_a[i] B_ij γ_a[j] is a share of one end's
+    probability, so the products exp(log α + log γ) are ordinary numbers.
+    """
+    G = g_start.shape[0]
+    maxW = 1
+    for g in range(G):
+        W = g_hi[g] - g_lo[g] + 1
+        if W > maxW:
+            maxW = W
+    p = np.empty(maxW)
+    q = np.empty(maxW)
+    d = np.empty(maxW)
+    lp = np.empty(maxW)
+    lq = np.empty(maxW)
+    ld = np.empty(maxW)
+    buf0 = np.empty(maxW)
+    buf1 = np.empty(maxW)
+    gam = np.empty(maxW)
+    gam2 = np.empty(maxW)
+    lseed = np.empty(maxW)
+    for g in range(G):
+        lo = g_lo[g]
+        hi = g_hi[g]
+        W = hi - lo + 1
+        Lam = _window_steps(birth, death, lo, hi, N, p, q, d, g_bs[g], g_ds[g])
+        for j in range(W):
+            lp[j] = math.log(p[j]) if p[j] > 0.0 else -np.inf
+            lq[j] = math.log(q[j]) if q[j] > 0.0 else -np.inf
+            ld[j] = math.log(d[j]) if d[j] > 0.0 else -np.inf
+        x = Lam * g_dt[g]
+        s0 = g_start[g] - lo
+        e0 = e_ptr[g]
+        e1 = e_ptr[g + 1]
+        dist = 0
+        for e in range(e0, e1):
+            out_lprob[e] = -np.inf
+            dd = abs(e_end[e] - lo - s0)
+            if dd > dist:
+                dist = dd
+        kmax = g_kmax[g]
+        cap = int(x + 10.0 * math.sqrt(x) + 20.0)
+        if 2 * dist + 20 > cap:
+            cap = 2 * dist + 20
+        if cap > kmax:
+            cap = kmax
+        lw = _log_poisson_weights(x, cap + 2)
+        lrel = math.log(g_rel[g])
+        if want_grad:
+            store = np.empty((cap + 1) * W)
+        else:
+            store = np.empty(0)
+        row = store[0:W] if want_grad else buf0
+        for j in range(W):
+            row[j] = -np.inf
+            buf1[j] = -np.inf
+        row[s0] = 0.0
+        r0 = s0
+        r1 = s0
+        lcum_lo = -np.inf
+        lcum_hi = -np.inf
+        leak_lo = -np.inf
+        leak_hi = -np.inf
+        k = 0
+        ldrop = 0.0
+        while True:
+            lwk = lw[k]
+            for e in range(e0, e1):
+                j = e_end[e] - lo
+                if r0 <= j <= r1:
+                    out_lprob[e] = _lae(out_lprob[e], lwk + row[j])
+            leak_lo = _lae(leak_lo, lwk + lcum_lo)
+            leak_hi = _lae(leak_hi, lwk + lcum_hi)
+            if k + 2.0 > x:
+                if k + 2 >= lw.shape[0]:
+                    lw = _extend_log_weights(lw, x, k + 3)
+                lrb = lw[k + 1] - math.log1p(-x / (k + 2.0))
+                pm = np.inf
+                for e in range(e0, e1):
+                    if out_lprob[e] < pm:
+                        pm = out_lprob[e]
+                if lrb <= lrel + pm or k >= kmax:
+                    ldrop = lrb
+                    break
+            elif k >= kmax:
+                ldrop = 0.0  # the cut is left of the mode: bound by the whole mass
+                break
+            if r0 == 0:
+                lcum_lo = _lae(lcum_lo, row[0] + lq[0])
+            if r1 == W - 1:
+                lcum_hi = _lae(lcum_hi, row[W - 1] + lp[W - 1])
+            n0 = r0 - 1 if r0 > 0 else 0
+            n1 = r1 + 1 if r1 < W - 1 else W - 1
+            if want_grad:
+                if (k + 2) * W > store.shape[0]:
+                    grown = np.empty(2 * store.shape[0])
+                    grown[:(k + 1) * W] = store[:(k + 1) * W]
+                    store = grown
+                nrow = store[(k + 1) * W:(k + 2) * W]
+                for j in range(W):
+                    nrow[j] = -np.inf
+                row = store[k * W:(k + 1) * W]
+            else:
+                nrow = buf1 if k % 2 == 0 else buf0
+            _log_step_forward(row, nrow, lp, lq, ld, n0, n1, W)
+            row = nrow
+            r0 = n0
+            r1 = n1
+            k += 1
+        K = k
+        out_lleak_lo[g] = leak_lo
+        out_lleak_hi[g] = leak_hi
+        out_ldrop[g] = ldrop
+        out_lam[g] = Lam
+        out_steps[g] = K
+        if not want_grad:
+            continue
+        off = g_off[g]
+        for j in range(W):
+            out_gb[off + j] = 0.0
+            out_gd[off + j] = 0.0
+            lseed[j] = -np.inf
+            gam[j] = -np.inf
+            gam2[j] = -np.inf
+        smin = W
+        smax = -1
+        for e in range(e0, e1):
+            if e_mult[e] > 0.0 and out_lprob[e] > -np.inf:
+                j = e_end[e] - lo
+                lseed[j] = _lae(lseed[j], math.log(e_mult[e]) - out_lprob[e])
+                if j < smin:
+                    smin = j
+                if j > smax:
+                    smax = j
+        if smax < 0 or K == 0:
+            continue
+        for j in range(smin, smax + 1):
+            gam[j] = lw[K] + lseed[j]  # γ_{K-1}
+        gb = out_gb[off:off + W]
+        gd = out_gd[off:off + W]
+        top_open = hi != N
+        bottom_open = lo != 0
+        for a_ in range(K - 1, -1, -1):
+            row = store[a_ * W:(a_ + 1) * W]
+            spread = K - 1 - a_
+            c0 = smin - spread if smin - spread > 0 else 0
+            c1 = smax + spread if smax + spread < W - 1 else W - 1
+            j0 = s0 - a_ if s0 - a_ > 0 else 0
+            j1 = s0 + a_ if s0 + a_ < W - 1 else W - 1
+            if c0 - 1 > j0:
+                j0 = c0 - 1
+            if c1 + 1 < j1:
+                j1 = c1 + 1
+            for j in range(j0, j1 + 1):
+                la = row[j]
+                if la == -np.inf:
+                    continue
+                ts = math.exp(la + gam[j])
+                if j < W - 1:
+                    gb[j] += math.exp(la + gam[j + 1]) - ts
+                elif top_open:
+                    gb[j] -= ts
+                if j > 0:
+                    gd[j] += math.exp(la + gam[j - 1]) - ts
+                elif bottom_open:
+                    gd[j] -= ts
+            if a_ == 0:
+                break
+            n0 = c0 - 1 if c0 > 0 else 0
+            n1 = c1 + 1 if c1 < W - 1 else W - 1
+            for j in range(n0, n1 + 1):
+                x0 = ld[j] + gam[j]
+                x1 = lp[j] + gam[j + 1] if j < W - 1 else -np.inf
+                x2 = lq[j] + gam[j - 1] if j > 0 else -np.inf
+                gam2[j] = _lse3(x0, x1, x2)
+            lwa = lw[a_]
+            for j in range(smin, smax + 1):
+                if lseed[j] > -np.inf:
+                    gam2[j] = _lae(gam2[j], lwa + lseed[j])
+            gam, gam2 = gam2, gam
+        inv = 1.0 / Lam
+        for j in range(W):
+            gb[j] *= inv
+            gd[j] *= inv
+
+
 @njit(cache=True, nogil=True, fastmath=_FM)
 def _hidden_kernel(birth, death, N, occ_ptr, a_lo, a_hi, le_ptr, log_emit,
                    iv_lo, iv_hi, iv_dt, iv_tail, want_grad,
@@ -726,6 +1017,12 @@ class PairsResult:
             grad_birth[grad_offsets[g]:grad_offsets[g+1]] for sizes lo_g..hi_g.
         grad_birth, grad_death: flat; ∂ Σ_e weight_e · log prob_e / ∂ λ_n, μ_n per group
             (pairs with prob 0 left out), or empty when gradients were not asked for.
+        log_prob: shape (n_ends,); log of the windowed probability, finite wherever it is
+            positive however small (``prob`` = exp(log_prob) underflows to 0 below ~1e-308).
+        log_leaked_low, log_leaked_high, log_dropped: shape (n_groups,); logs of
+            ``leaked_low``, ``leaked_high`` and ``dropped`` (-inf for 0), kept in log space
+            for log-space groups.
+        log_space: shape (n_groups,); which groups were swept in log space.
     """
 
     prob: np.ndarray
@@ -738,12 +1035,41 @@ class PairsResult:
     grad_offsets: np.ndarray
     grad_birth: np.ndarray
     grad_death: np.ndarray
+    log_prob: np.ndarray
+    log_leaked_low: np.ndarray
+    log_leaked_high: np.ndarray
+    log_dropped: np.ndarray
+    log_space: np.ndarray
+
+
+def _log0(x: np.ndarray) -> np.ndarray:
+    """log x with log 0 = -inf and no warning."""
+    with np.errstate(divide="ignore"):
+        return np.log(x)
+
+
+def _group_subset(sel: np.ndarray, ep: np.ndarray, off: np.ndarray) -> tuple[np.ndarray, np.ndarray,
+                                                                          np.ndarray, np.ndarray]:
+    """End indices, CSR pointer, flat gradient indices and gradient offsets of the groups ``sel``."""
+    cnt = ep[sel + 1] - ep[sel]
+    sub_ep = np.zeros(sel.size + 1, dtype=np.int64)
+    np.cumsum(cnt, out=sub_ep[1:])
+    eidx = (np.concatenate([np.arange(ep[g], ep[g + 1]) for g in sel]) if sel.size
+            else np.zeros(0, dtype=np.int64))
+    wid = off[sel + 1] - off[sel]
+    sub_off = np.zeros(sel.size + 1, dtype=np.int64)
+    np.cumsum(wid, out=sub_off[1:])
+    gidx = (np.concatenate([np.arange(off[g], off[g + 1]) for g in sel]) if sel.size
+            else np.zeros(0, dtype=np.int64))
+    return eidx.astype(np.int64), sub_ep, gidx.astype(np.int64), sub_off
 
 
 def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, group_dt,
                              group_lo, group_hi, group_tail, end_ptr, end_size, end_weight,
                              *, grad: bool = True, linear: bool = False,
-                             group_birth_scale=None, group_death_scale=None) -> PairsResult:
+                             group_birth_scale=None, group_death_scale=None,
+                             group_log_space=None, group_relative_tail=None,
+                             group_max_steps=None) -> PairsResult:
     """Windowed P(start -> end) for groups of pairs, and the adjoint gradient of Σ w log P.
 
     A group is one start size, one duration and one window; its ends share the group's
@@ -767,6 +1093,16 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
             immigration λ_0: λ'_n = λ_0 + (λ_n − λ_0)·s) and on the deaths (μ'_n = μ_n·s);
             default 1. A year's environment or a covariate moves a group's rates this way.
             The gradients are then with respect to the scaled rates.
+        group_log_space: per group, sweep in log space (every vector entry kept as its
+            logarithm, see _pairs_log_kernel): probabilities far below the smallest double
+            stay finite and keep their relative accuracy, at a few tens of times the cost
+            of a plain sweep. Default: no group. Not with ``linear``; weights must be ≥ 0.
+        group_relative_tail: per group, for log-space groups: the Poisson mass cut off on
+            the right is at most this fraction of the group's smallest end probability
+            (the number of steps is chosen during the sweep); ``group_tail`` is not used
+            for them. Default 1e-12.
+        group_max_steps: per group, most steps a log-space sweep may take (default 10⁷);
+            where it stops early the cut mass is reported in ``dropped`` as it is.
 
     Returns:
         PairsResult.
@@ -774,7 +1110,8 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
     Raises:
         RateError: bad rates, windows that do not contain their pairs, dt ≤ 0 or tail ≤ 0,
             scales that are not finite and > 0, or a birth scale ≠ 1 with births below the
-            immigration λ_0 (the scaled rate would be negative).
+            immigration λ_0 (the scaled rate would be negative); log-space groups with
+            ``linear``, with negative weights, relative tails not in (0, 1) or step limits < 1.
     """
     b, m, N = check_rate_arrays(birth, death, min_sizes=1)
     gs = np.ascontiguousarray(group_start, dtype=np.int64)
@@ -821,11 +1158,78 @@ def pair_log_likelihood_grad(birth: np.ndarray, death: np.ndarray, group_start, 
         n = int(np.flatnonzero(b[:-1] < b[0])[0])
         raise RateError(f"birth rate at size {n} is below the immigration rate λ_0 = {b[0]!r}: births "
                         "cannot be scaled", name="birth", size=n, value=float(b[n]))
-    if G:
-        _pairs_kernel(b, m, N, gs, glo, ghi, gdt, gtail, gbs, gds, ep, ee, ew, bool(grad), bool(linear),
-                      prob, leak, leak_lo, leak_hi, drop, lam, steps, off, gb, gd)
+    logsp = np.zeros(G, dtype=bool) if group_log_space is None else np.asarray(group_log_space, dtype=bool)
+    if logsp.shape != (G,):
+        raise RateError("group_log_space must have one flag per group")
+    any_log = group_log_space is not None and bool(logsp.any())
+    if any_log:
+        rel = (np.full(G, 1e-12) if group_relative_tail is None
+               else np.ascontiguousarray(group_relative_tail, dtype=np.float64))
+        kmax = (np.full(G, 10 ** 7, dtype=np.int64) if group_max_steps is None
+                else np.ascontiguousarray(group_max_steps, dtype=np.int64))
+        if linear:
+            raise RateError("log-space sweeps differentiate Σ w log P; linear=True needs plain sweeps")
+        if rel.shape != (G,) or kmax.shape != (G,) or np.any(~((rel > 0) & (rel < 1))[logsp]) \
+                or np.any(kmax[logsp] < 1):
+            raise RateError("relative tails must lie in (0, 1) and step limits be ≥ 1, one per group")
+        owner = np.repeat(np.arange(G), np.diff(ep))
+        if np.any(ew[logsp[owner]] < 0):
+            raise RateError("log-space groups need end weights ≥ 0")
+    if not any_log:  # plain sweeps only (the ordinary case): logs taken once at the end
+        if G:
+            _pairs_kernel(b, m, N, gs, glo, ghi, gdt, gtail, gbs, gds, ep, ee, ew, bool(grad), bool(linear),
+                          prob, leak, leak_lo, leak_hi, drop, lam, steps, off, gb, gd)
+        with np.errstate(divide="ignore"):
+            return PairsResult(prob=prob, leaked=leak, leaked_low=leak_lo, leaked_high=leak_hi, dropped=drop,
+                               rate=lam, steps=steps, grad_offsets=off, grad_birth=gb, grad_death=gd,
+                               log_prob=np.log(prob), log_leaked_low=np.log(leak_lo),
+                               log_leaked_high=np.log(leak_hi), log_dropped=np.log(drop), log_space=logsp)
+    # plain and log-space groups: each kind in its own compiled call, results put back in place
+    lprob = np.full(ee.size, -np.inf)
+    lleak_lo = np.full(G, -np.inf)
+    lleak_hi = np.full(G, -np.inf)
+    ldrop = np.full(G, -np.inf)
+    for in_log in (False, True):
+        sel = np.flatnonzero(logsp == in_log)
+        if not sel.size:
+            continue
+        eidx, sep, gidx, soff = _group_subset(sel, ep, off)
+        s_gb = np.zeros(int(soff[-1]) if grad else 0)
+        s_gd = np.zeros_like(s_gb)
+        s_lam = np.zeros(sel.size)
+        s_steps = np.zeros(sel.size, dtype=np.int64)
+        if in_log:
+            s_lp = np.zeros(eidx.size)
+            s_llo, s_lhi, s_ldr = np.zeros(sel.size), np.zeros(sel.size), np.zeros(sel.size)
+            _pairs_log_kernel(b, m, N, gs[sel], glo[sel], ghi[sel], gdt[sel], rel[sel], kmax[sel],
+                              gbs[sel], gds[sel], sep, ee[eidx], ew[eidx], bool(grad),
+                              s_lp, s_llo, s_lhi, s_ldr, s_lam, s_steps, soff, s_gb, s_gd)
+            lprob[eidx] = s_lp
+            lleak_lo[sel], lleak_hi[sel], ldrop[sel] = s_llo, s_lhi, s_ldr
+            prob[eidx] = np.exp(s_lp)
+            leak_lo[sel], leak_hi[sel], drop[sel] = np.exp(s_llo), np.exp(s_lhi), np.exp(s_ldr)
+            leak[sel] = leak_lo[sel] + leak_hi[sel]
+        else:
+            s_p = np.zeros(eidx.size)
+            s_lk, s_llo, s_lhi, s_dr = (np.zeros(sel.size) for _ in range(4))
+            _pairs_kernel(b, m, N, gs[sel], glo[sel], ghi[sel], gdt[sel], gtail[sel], gbs[sel], gds[sel],
+                          sep, ee[eidx], ew[eidx], bool(grad), bool(linear),
+                          s_p, s_lk, s_llo, s_lhi, s_dr, s_lam, s_steps, soff, s_gb, s_gd)
+            prob[eidx] = s_p
+            leak[sel], leak_lo[sel], leak_hi[sel], drop[sel] = s_lk, s_llo, s_lhi, s_dr
+        lam[sel] = s_lam
+        steps[sel] = s_steps
+        if grad:
+            gb[gidx] = s_gb
+            gd[gidx] = s_gd
+    plain = ~logsp
+    owner_plain = plain[owner]
+    lprob[owner_plain] = _log0(prob[owner_plain])
+    lleak_lo[plain], lleak_hi[plain], ldrop[plain] = _log0(leak_lo[plain]), _log0(leak_hi[plain]), _log0(drop[plain])
     return PairsResult(prob=prob, leaked=leak, leaked_low=leak_lo, leaked_high=leak_hi, dropped=drop,
-                       rate=lam, steps=steps, grad_offsets=off, grad_birth=gb, grad_death=gd)
+                       rate=lam, steps=steps, grad_offsets=off, grad_birth=gb, grad_death=gd,
+                       log_prob=lprob, log_leaked_low=lleak_lo, log_leaked_high=lleak_hi,
+                       log_dropped=ldrop, log_space=logsp)
 
 
 def weighted_transition_grad(birth: np.ndarray, death: np.ndarray, starts, ends, weights, t: float,

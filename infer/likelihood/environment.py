@@ -198,18 +198,19 @@ def evaluate_environment(plan: EnvironmentPlan, b: np.ndarray, d: np.ndarray, N:
     U, K = x.shape
     plan.groups = _groups(plan, lb, ld)
     sw = sweep_groups(plan.groups, b, d, N, tol / e.n_pairs, grad)
-    P = sw.prob.reshape(U, K)
-    WP = w * P
-    L = WP.sum(axis=1)
+    # in log space: a node's P may be far below the smallest double
     with np.errstate(divide="ignore"):
-        log_l = np.log(L)
-    bound = np.sum(plan.u_mult * np.log1p((w * sw.bound.reshape(U, K)).sum(axis=1) / L))
+        lwp = np.log(w) + sw.log_prob.reshape(U, K)
+    top = lwp.max(axis=1, keepdims=True)
+    log_l = np.log(np.exp(lwp - top).sum(axis=1)) + top[:, 0]
+    share = np.exp(lwp - log_l[:, None])  # each node's part of the pair's average
+    bound = np.sum(plan.u_mult * np.log1p((share * sw.rel_bound.reshape(U, K)).sum(axis=1)))
     logp_pair = log_l[plan.pair_unique]
     res = LikelihoodResult(float(logp_pair.sum()), None, None, None, float(bound), e.per_site(logp_pair),
                            sw.sweeps, sw.steps, sw.rounds)
     if not grad:
         return res
-    coef = (plan.u_mult[:, None] * WP / L[:, None]).ravel()  # posterior weight of each node, × multiplicity
+    coef = (plan.u_mult[:, None] * share).ravel()  # posterior weight of each node, × multiplicity
     sb, sd = np.exp(lb).ravel(), np.exp(ld).ravel()
     d_birth, d_death = np.zeros(N + 1), np.zeros(N + 1)
     dlb, dld = np.zeros(U * K), np.zeros(U * K)

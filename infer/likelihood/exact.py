@@ -171,9 +171,9 @@ def evaluate_exact(plan: ExactPlan, b: np.ndarray, d: np.ndarray, N: int, tol: f
 
     Raises:
         CapTooSmallError: a count exceeds N.
-        LikelihoodUnderflowError: a possible transition's probability is too small for
-            double precision to bound within tol, even on the whole range 0..N, or the
-            widening did not converge.
+        LikelihoodUnderflowError: a possible transition's probability cannot be bounded
+            within tol even on the whole range 0..N, or the widening did not converge.
+        RateError: a sweep would exceed the cost limits of :func:`.sweeps.check_cost`.
     """
     if plan.max_count > N:
         s, t = plan.max_where
@@ -187,9 +187,8 @@ def evaluate_exact(plan: ExactPlan, b: np.ndarray, d: np.ndarray, N: int, tol: f
         return LikelihoodResult(-np.inf, zeros.copy() if grad else None, zeros.copy() if grad else None, None,
                                 0.0, plan.per_site(logp_pair))
     sw = sweep_groups(plan.groups, b, d, N, tol / plan.n_pairs, grad)  # Σ_pairs (leak + drop)/P ≤ tol
-    P = sw.prob[plan.pair_end]
-    logp_pair = np.log(P)
-    bound_pair = sw.bound[plan.end_group[plan.pair_end]] / P
+    logp_pair = sw.log_prob[plan.pair_end]  # finite however small: log-space sweeps where needed
+    bound_pair = sw.rel_bound[plan.pair_end]
     d_birth = d_death = None
     if grad:
         idx = np.concatenate([np.arange(lo, lo + g.size) for lo, g in zip(sw.lo, sw.grad_birth)])

@@ -8,6 +8,13 @@ the margin the previous evaluation's measured leaks call for, and widens it on t
 that leaks until the probability it leaves out (plus the Poisson mass cut off) is within
 ``tol_pair`` of each end's probability. Both the exact-count likelihood and the
 environment-averaged likelihood use it.
+
+Every comparison is made between logarithms. A group whose plain sweep gives an end a
+probability below LOG_SPACE_BELOW (or 0: it underflowed) is swept again in log space
+(chain.uniformization, ``group_log_space``), where probabilities far below the smallest
+double keep their relative accuracy and the bound stays relative to each end's own
+probability; the next evaluation starts such groups in log space directly while their
+smallest probability stays below LOG_SPACE_KEEP_BELOW.
 """
 from __future__ import annotations
 
@@ -23,7 +30,8 @@ from tallyfit.infer.errors import LikelihoodUnderflowError
 
 from .windows import MAX_ROUNDS, TAIL_FLOOR, warm_margins
 
-__all__ = ["Groups", "Sweeps", "sweep_groups", "MAX_STEPS", "MAX_STORE_BYTES", "check_cost"]
+__all__ = ["Groups", "Sweeps", "sweep_groups", "MAX_STEPS", "MAX_STORE_BYTES", "LOG_SPACE_BELOW",
+           "LOG_SPACE_KEEP_BELOW", "check_cost"]
 
 #: Largest number of uniformization steps (total rate × interval) one sweep may need before
 #: the point is treated as impossible: a sampler's far-off trial point, not a plausible year.
@@ -31,6 +39,15 @@ MAX_STEPS = 2e6
 #: Largest forward store one gradient sweep may keep (steps × window × 8 bytes); fixed, not
 #: the machine's free memory, so that which points are refused does not depend on the machine.
 MAX_STORE_BYTES = 2 * 1024 ** 3
+#: A plain sweep is trusted for probabilities down to here; a group with a smaller end
+#: probability is swept in log space. Above it, what underflows in a plain sweep (entries
+#: below ~1e-308, each step's error at most one subnormal per size) is negligible
+#: relative to the probability, and the Poisson tail it needs stays above TAIL_FLOOR.
+LOG_SPACE_BELOW = 1e-250
+#: A log-space group goes back to plain sweeps at the next evaluation once its smallest
+#: probability is above this (the gap to LOG_SPACE_BELOW keeps a group near the switch from
+#: flipping at every step of a sampler).
+LOG_SPACE_KEEP_BELOW = 1e-200
 
 
 @dataclass
@@ -71,16 +88,19 @@ class Sweeps:
     """The windowed probabilities of every end, their bounds, and per-group gradients.
 
     Attributes:
-        prob: per end, the windowed probability (≤ the true one).
-        bound: per group, leaked + dropped probability (true P ≤ prob + bound).
+        log_prob: per end, log of the windowed probability (≤ the true one), finite
+            wherever the probability is positive however small.
+        log_bound: per group, log of the leaked + dropped probability (true P ≤ P + bound).
+        rel_bound: per end, bound / P (computed in log space): within tol_pair.
         lo: per group, the window's lowest size (gradient entry j is size lo + j).
         grad_birth, grad_death: per group, ∂ Σ_e w_e log P_e / ∂ (scaled) rate over the
             window (empty list without gradients).
         sweeps, steps, rounds: cost counters.
     """
 
-    prob: np.ndarray
-    bound: np.ndarray
+    log_prob: np.ndarray
+    log_bound: np.ndarray
+    rel_bound: np.ndarray
     lo: np.ndarray
     grad_birth: list[np.ndarray]
     grad_death: list[np.ndarray]
@@ -88,9 +108,19 @@ class Sweeps:
     steps: int
     rounds: int
 
+    @property
+    def prob(self) -> np.ndarray:
+        """Per end, the windowed probability as a double (0 where it underflows)."""
+        return np.exp(self.log_prob)
+
+    @property
+    def bound(self) -> np.ndarray:
+        """Per group, leaked + dropped probability as a double (0 where it underflows)."""
+        return np.exp(self.log_bound)
+
 
 def _initial_margins(groups: Groups, b: np.ndarray, d: np.ndarray, N: int,
-                     tol_pair: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                     tol_pair: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     tot = b + d
     tot[N] = d[N]
     scale = np.ones(groups.n_groups)
@@ -101,13 +131,15 @@ def _initial_margins(groups: Groups, b: np.ndarray, d: np.ndarray, N: int,
     mlo = (np.ceil(z * np.sqrt(np.maximum(tot[groups.lowest] * scale, 1.0) * groups.dt)) + 6).astype(np.int64)
     mhi = (np.ceil(z * np.sqrt(np.maximum(tot[groups.highest] * scale, 1.0) * groups.dt)) + 6).astype(np.int64)
     tail = np.full(groups.n_groups, max(tol_pair * 1e-4, TAIL_FLOOR))
+    log_space = np.zeros(groups.n_groups, dtype=bool)
     warm = groups.warm
     if warm is not None and warm["sig_lo"].size == groups.n_groups:
-        zt = np.sqrt(2.0 * np.log(1.0 / (0.4 * tol_pair * warm["pmin"])))
+        zt = np.sqrt(2.0 * (math.log(1.0 / (0.4 * tol_pair)) - warm["log_pmin"]))
         warm_margins(mlo, warm["sig_lo"], warm["m_lo"], warm["failed"], zt)
         warm_margins(mhi, warm["sig_hi"], warm["m_hi"], warm["failed"], zt)
-        tail = np.maximum(np.minimum(tail, 0.05 * tol_pair * warm["pmin"]), TAIL_FLOOR)
-    return mlo, mhi, tail
+        tail = np.maximum(np.minimum(tail, 0.05 * tol_pair * np.exp(warm["log_pmin"])), TAIL_FLOOR)
+        log_space = warm["log_space"].copy()
+    return mlo, mhi, tail, log_space
 
 
 def check_cost(b: np.ndarray, d: np.ndarray, lo: np.ndarray, hi: np.ndarray, dt: np.ndarray,
@@ -157,27 +189,35 @@ def sweep_groups(groups: Groups, b: np.ndarray, d: np.ndarray, N: int, tol_pair:
         Sweeps.
 
     Raises:
-        LikelihoodUnderflowError: an end's probability is too small for double precision
-            to bound within tol_pair even on the whole range 0..N (from ``groups.underflow``),
-            or the widening did not converge.
+        LikelihoodUnderflowError: an end's probability cannot be bounded within tol_pair
+            even on the whole range 0..N (from ``groups.underflow``), or the widening did
+            not converge.
+        RateError: a sweep would cost more than the limits of :func:`check_cost`, or a
+            log-space sweep reached its step limit.
     """
     G = groups.n_groups
-    mlo, mhi, tail = _initial_margins(groups, b, d, N, tol_pair)
+    mlo, mhi, tail, logsp = _initial_margins(groups, b, d, N, tol_pair)
     lo = np.maximum(groups.lowest - mlo, 0)
     hi = np.minimum(groups.highest + mhi, N)
     bs = np.ones(G) if groups.birth_scale is None else groups.birth_scale
     ds = np.ones(G) if groups.death_scale is None else groups.death_scale
-    prob = np.zeros(groups.end_size.size)
-    leak_lo = np.zeros(G)
-    leak_hi = np.zeros(G)
-    drop = np.zeros(G)
-    pmin_all = np.zeros(G)
+    rel = np.full(G, min(0.05 * tol_pair, 0.5))  # log-space groups: Poisson cut relative to P
+    lprob = np.full(groups.end_size.size, -np.inf)
+    llo_all = np.full(G, -np.inf)
+    lhi_all = np.full(G, -np.inf)
+    lbound_all = np.full(G, -np.inf)
+    lpmin_all = np.full(G, -np.inf)
     failed = np.zeros(G, dtype=bool)
     gb: list[np.ndarray] = [np.zeros(0)] * G if grad else []
     gd: list[np.ndarray] = [np.zeros(0)] * G if grad else []
     pending = np.arange(G)
     sweeps = steps = rounds = 0
     ptr = groups.end_ptr
+    ltol = math.log(tol_pair)
+    # groups newly swept in log space are first sized without gradients (a log-space backward
+    # sweep costs several forward ones), then swept once more with them
+    probing = np.zeros(G, dtype=bool)
+    log_switch = max(math.log(LOG_SPACE_BELOW), math.log(TAIL_FLOOR) + 23.0 - math.log(0.05 * tol_pair))
     while pending.size:
         rounds += 1
         if rounds > MAX_ROUNDS:
@@ -191,62 +231,100 @@ def sweep_groups(groups: Groups, b: np.ndarray, d: np.ndarray, N: int, tol_pair:
         else:
             eptr = ptr
             eidx = np.arange(groups.end_size.size)
+        lsp = logsp[pending]
+        lsp_any = bool(lsp.any())
+        round_grad = grad and not (lsp_any and probing[pending].any())
+        kmax = width = None
+        if lsp_any:
+            width = hi[pending] - lo[pending] + 1
+            kmax = np.full(pending.size, int(MAX_STEPS), dtype=np.int64)
+            if round_grad:
+                kmax = np.maximum(np.minimum(kmax, MAX_STORE_BYTES // (8 * width) - 1), 1)
         r = pair_log_likelihood_grad(b, d, groups.start[pending], groups.dt[pending], lo[pending], hi[pending],
                                      tail[pending], eptr, groups.end_size[eidx], groups.end_weight[eidx],
-                                     grad=grad, group_birth_scale=bs[pending], group_death_scale=ds[pending])
+                                     grad=round_grad, group_birth_scale=bs[pending], group_death_scale=ds[pending],
+                                     group_log_space=lsp if lsp_any else None,
+                                     group_relative_tail=rel[pending] if lsp_any else None,
+                                     group_max_steps=kmax)
         sweeps += pending.size
         steps += int(r.steps.sum())
-        prob[eidx] = r.prob
-        leak_lo[pending] = r.leaked_low
-        leak_hi[pending] = r.leaked_high
-        drop[pending] = r.dropped
-        pmin = np.minimum.reduceat(r.prob, eptr[:-1]) if r.prob.size else np.zeros(0)
-        pmin_all[pending] = pmin
-        need = tol_pair * pmin
-        ok = (r.leaked + r.dropped) <= need
-        if grad:
+        lprob[eidx] = r.log_prob
+        lpmin = np.minimum.reduceat(r.log_prob, eptr[:-1]) if r.log_prob.size else np.zeros(0)
+        lbound = np.logaddexp(np.logaddexp(r.log_leaked_low, r.log_leaked_high), r.log_dropped)
+        llo_all[pending], lhi_all[pending], lbound_all[pending] = r.log_leaked_low, r.log_leaked_high, lbound
+        lpmin_all[pending] = lpmin
+        lneed = ltol + lpmin
+        # a plain sweep whose smallest probability is too small to trust: sweep it in log space
+        to_log = lpmin < log_switch  # (P = 0 included; a log-space group's bound is never 0)
+        if lsp_any:
+            to_log &= ~lsp
+        ok = (lbound <= lneed) & ~to_log
+        redo = pending[ok] if grad and not round_grad else None
+        if redo is not None:
+            probing[redo] = False
+        if round_grad:
             for k in np.flatnonzero(ok):
                 a, z_ = r.grad_offsets[k], r.grad_offsets[k + 1]
                 gb[pending[k]] = r.grad_birth[a:z_]
                 gd[pending[k]] = r.grad_death[a:z_]
-        bad = np.flatnonzero(~ok)
+        switched = pending[to_log] if to_log.any() else None
+        if switched is not None:
+            logsp[switched] = True
+            probing[switched] = True
+        bad = np.flatnonzero(~(ok | to_log))
+        again = [x for x in (switched, redo) if x is not None]
         if not bad.size:
-            break
+            if not again:
+                break
+            pending = np.unique(np.concatenate(again))
+            continue
         gbad = pending[bad]
         failed[gbad] = True
-        nb = need[bad]
-        zero = pmin[bad] <= 0.0
-        lo_bad = (r.leaked_low[bad] > 0.45 * nb) & (lo[gbad] > 0)
-        hi_bad = (r.leaked_high[bad] > 0.45 * nb) & (hi[gbad] < N)
-        tail_bad = (r.dropped[bad] > 0.1 * nb) | zero
-        stuck = ~lo_bad & ~hi_bad & (~tail_bad | (tail[gbad] <= TAIL_FLOOR))
+        nb = lneed[bad]
+        zero = lpmin[bad] == -np.inf
+        in_log = lsp[bad]
+        lo_bad = (r.log_leaked_low[bad] > math.log(0.45) + nb) & (lo[gbad] > 0)
+        hi_bad = (r.log_leaked_high[bad] > math.log(0.45) + nb) & (hi[gbad] < N)
+        tail_bad = (r.log_dropped[bad] > math.log(0.1) + nb) | zero
+        capped = in_log & tail_bad & (r.steps[bad] >= (kmax[bad] if kmax is not None else 0))
+        if np.any(capped):
+            k = int(bad[int(np.flatnonzero(capped)[0])])
+            raise RateError(f"a census interval's log-space sweep reached its limit of {int(kmax[k])} "
+                            f"uniformization steps on a window of {int(width[k])} sizes before its Poisson "
+                            f"tail was within tolerance (limits: {MAX_STEPS:.0e} steps, a gradient store of "
+                            f"{MAX_STORE_BYTES / 1024 ** 3:.0f} GiB)")
+        stuck = ~lo_bad & ~hi_bad & (~tail_bad | in_log | (tail[gbad] <= TAIL_FLOOR))
         if np.any(stuck):
             g = int(gbad[int(np.flatnonzero(stuck)[0])])
-            e = int(ptr[g] + np.argmin(prob[ptr[g]:ptr[g + 1]]))
-            raise groups.underflow(g, e, float(prob[e]))
-        # smaller Poisson tail where the cut mass is the problem (or P vanished by the cut)
-        newtail = np.where(zero, TAIL_FLOOR, np.maximum(0.05 * nb, TAIL_FLOOR))
-        tail[gbad] = np.where(tail_bad, np.minimum(tail[gbad], newtail), tail[gbad])
+            e = int(ptr[g] + np.argmin(lprob[ptr[g]:ptr[g + 1]]))
+            raise groups.underflow(g, e, float(np.exp(lprob[e])))
+        # smaller Poisson tail where the cut mass is the problem (plain sweeps)
+        with np.errstate(over="ignore"):
+            newtail = np.where(zero, TAIL_FLOOR, np.maximum(0.05 * np.exp(nb), TAIL_FLOOR))
+        tail[gbad] = np.where(tail_bad & ~in_log, np.minimum(tail[gbad], newtail), tail[gbad])
         # wider windows on the side that leaks: Gaussian-tail extrapolation of the leak
         with np.errstate(divide="ignore", invalid="ignore"):
-            zt = np.sqrt(2.0 * np.log(1.0 / (0.4 * np.maximum(nb, 1e-300))))
-            for side_bad, m_, lk in ((lo_bad, mlo, r.leaked_low[bad]), (hi_bad, mhi, r.leaked_high[bad])):
+            zt = np.sqrt(2.0 * (math.log(1.0 / 0.4) - nb))
+            for side_bad, m_, lk in ((lo_bad, mlo, r.log_leaked_low[bad]), (hi_bad, mhi, r.log_leaked_high[bad])):
                 cur = m_[gbad]
-                sig = cur / np.sqrt(2.0 * np.log(1.0 / np.clip(lk, 1e-300, 0.5)))
+                sig = cur / np.sqrt(2.0 * np.maximum(-lk, math.log(2.0)))
                 want = np.ceil(1.15 * sig * zt) + 3
-                grown = np.where(lk < 0.1, np.maximum(want, np.ceil(1.25 * cur)), 2 * cur)
+                grown = np.where(lk < math.log(0.1), np.maximum(want, np.ceil(1.25 * cur)), 2 * cur)
                 m_[gbad] = np.where(side_bad, grown, cur).astype(np.int64)
         lo[gbad] = np.maximum(groups.lowest[gbad] - mlo[gbad], 0)
         hi[gbad] = np.minimum(groups.highest[gbad] + mhi[gbad], N)
-        pending = gbad
+        pending = np.unique(np.concatenate([gbad, *again]))
     # learn, per side, the spread that the measured leaks imply (for the next evaluation)
+    owner = np.repeat(np.arange(G), np.diff(ptr))
     with np.errstate(divide="ignore", invalid="ignore"):
+        rel_bound = np.exp(lbound_all[owner] - lprob)
         sigs = []
-        for m_, lk, clip in ((mlo, leak_lo, lo == 0), (mhi, leak_hi, hi == N)):
-            sg = m_ / np.sqrt(2.0 * np.log(1.0 / np.clip(lk, 1e-300, 0.1)))
-            sg[clip | (pmin_all <= 0) | (lk < 1e-250)] = np.nan
+        for m_, lk, clip in ((mlo, llo_all, lo == 0), (mhi, lhi_all, hi == N)):
+            sg = m_ / np.sqrt(2.0 * np.maximum(-lk, math.log(10.0)))
+            sg[clip | (lpmin_all == -np.inf) | (lk == -np.inf) | (~logsp & (lk < math.log(1e-250)))] = np.nan
             sigs.append(sg)
     groups.warm = {"sig_lo": sigs[0], "sig_hi": sigs[1], "m_lo": mlo.astype(float), "m_hi": mhi.astype(float),
-                   "failed": failed, "pmin": np.maximum(pmin_all, 1e-300)}
-    return Sweeps(prob=prob, bound=leak_lo + leak_hi + drop, lo=lo, grad_birth=gb, grad_death=gd,
-                  sweeps=sweeps, steps=steps, rounds=rounds)
+                   "failed": failed, "log_pmin": np.maximum(lpmin_all, -1e300),
+                   "log_space": logsp & (lpmin_all < math.log(LOG_SPACE_KEEP_BELOW))}
+    return Sweeps(log_prob=lprob, log_bound=lbound_all, rel_bound=rel_bound, lo=lo,
+                  grad_birth=gb, grad_death=gd, sweeps=sweeps, steps=steps, rounds=rounds)
