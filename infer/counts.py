@@ -105,6 +105,11 @@ class SiteSeries:
                 f"n_counts={self.n_counts}, times={format_time(float(self.times[0]))}..{format_time(float(self.times[-1]))})")
 
     @property
+    def row_kind(self) -> str:
+        """What ``rows`` numbers: "line" (lines of the file) or "row" (DataFrame or array rows)."""
+        return self._row_kind
+
+    @property
     def n_times(self) -> int:
         """Number of distinct survey times (including times whose counts are all blank)."""
         return int(self.times.shape[0])

@@ -23,9 +23,10 @@ Gabry 2017, Stat. Comput. 27:1413–1432) with ArviZ, flagging Pareto k above 0.
 from __future__ import annotations
 
 import json
+import os
 import time
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -41,7 +42,11 @@ from tallyfit.infer.families import RateFamily, get_family
 from tallyfit.infer.model import NO_ENVIRONMENT, CountModel, Environment, build_count_model
 from tallyfit.infer.predictive import observed_data_group, simulate_posterior_counts
 from tallyfit.infer.sampling import DEFAULT_INIT, sample_model, sample_prior, seed_streams
+from tallyfit.infer.observation import default_cap, normalise_detection
+from tallyfit.infer.screening import (LEAPFROG_STEPS, check_changes, describe_duration, estimate_memory,
+                                      estimate_sampling_time, require_memory_for_fit)
 from tallyfit.infer.start import find_start
+from tallyfit.infer.units import TimeUnit
 
 __all__ = ["CapWarning", "ConvergenceWarning", "FitResult", "fit_counts", "compare_families"]
 
@@ -129,7 +134,8 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
                pooling: bool = False, progressbar: bool = True, cores: int | None = None,
                n_predictive: int = 200, n_prior: int = 500,
                target_accept: float = 0.95, credible_level: float = 0.9,
-               environment: Environment = NO_ENVIRONMENT) -> FitResult:
+               environment: Environment = NO_ENVIRONMENT, accept_jumps: bool = False,
+               unit: TimeUnit | None = None, log: Callable[[str], None] | None = None) -> FitResult:
     """Fit a rate family to count data by NUTS and judge the result.
 
     Args:
@@ -149,6 +155,11 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         target_accept: NUTS target acceptance rate (see :func:`sample_model`).
         credible_level: level of the parameter summary's equal-tailed intervals.
         environment: good and bad years and covariates (exact counts only).
+        accept_jumps: fit counts that no process of the family could plausibly make
+            (:func:`infer.screening.check_changes`) instead of refusing them.
+        unit: the time column's unit, for messages.
+        log: where plain-words notes go before sampling (the memory and time a long or
+            large fit will take); None: nowhere.
 
     Returns:
         FitResult.
@@ -157,6 +168,10 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         InputError: data that are not CountData, a bad family, settings or priors, or no
             starting point where the model's log density is finite (all before any
             sampling); a sampler that cannot start or runs out of memory.
+        ImplausibleCountsError: counts the family's priors do not allow (an InputError;
+            before the model is built), unless ``accept_jumps``.
+        FitTooLargeError: the fit would not fit in memory (an InputError; before the model
+            is built).
         SamplerError: any other failure inside the sampler (an internal error), in plain words.
     """
     for name, value, least in (("chains", chains, 1), ("draws", draws, 1), ("tune", tune, 0),
@@ -173,7 +188,22 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         raise InputError(f"fit_counts needs CountData, not {type(data).__name__}", source="data",
                          hint="read a counts file with tallyfit.inputs.counts_csv.load_counts")
     fam = get_family(family)
+    say = log or (lambda text: None)
     timing: dict[str, float] = {}
+    # before anything of the cap's size exists: impossible jumps (typing slips) and the memory
+    t0 = time.perf_counter()
+    accepted = check_changes(data, fam, priors=priors, detection=detection, environment=environment,
+                             accept=accept_jumps, unit=unit)
+    processes = max(1, min(chains, cores or os.cpu_count() or 1))
+    n_cap = cap if isinstance(cap, (int, np.integer)) and not isinstance(cap, bool) and cap >= 1 else (
+        default_cap(data, normalise_detection(detection)))
+    # the main process holds the model too while worker processes sample
+    cost = estimate_memory(int(n_cap), processes=processes + (1 if processes > 1 else 0))
+    require_memory_for_fit(cost, largest_count=data.max_count, where=_largest_count_place(data),
+                           cap_given=cap is not None)
+    if cost.needed_bytes >= 2 ** 30:
+        say(f"memory: this fit will use {cost.describe()}")
+    timing["screening"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -183,6 +213,9 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         if not issubclass(w.category, (DeprecationWarning, PendingDeprecationWarning)):
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     messages = list(cm.messages)
+    if accepted:
+        messages.append("counts accepted deliberately although the family's priors do not allow them (--accept-jumps): "
+                        + "; ".join(c.describe(unit) for c in accepted[:5]))
     timing["build"] = time.perf_counter() - t0
     sample_seed, prior_seed, rng = seed_streams(seed)
     # prior draws before sampling: priors that barely meet the family's support stop here
@@ -194,6 +227,14 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
     t0 = time.perf_counter()
     start = find_start(cm, chains=chains, seed=sample_seed)
     timing["start"] = time.perf_counter() - t0
+    low, typical, high = estimate_sampling_time(start.gradient_seconds, chains=chains, draws=draws, tune=tune,
+                                                processes=min(processes, chains))
+    if typical >= 60:
+        say(f"time: sampling will take roughly {describe_duration(typical)} (between {describe_duration(low)} and "
+            f"{describe_duration(high)}): one evaluation of the likelihood and its gradient takes "
+            f"{start.gradient_seconds:.3g} s here, NUTS needs {LEAPFROG_STEPS[0]}–{LEAPFROG_STEPS[2]} of them per "
+            f"draw, {chains} chain(s) × {tune + draws} draws on {min(processes, chains)} core(s); fewer draws "
+            "(--draws, --tune) or a lower cap (--max-size) shorten it")
 
     t0 = time.perf_counter()
     idata = sample_model(cm, chains=chains, draws=draws, tune=tune, seed=sample_seed,
@@ -240,7 +281,7 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
         "detection": cm.detection, "priors": cm.priors, "pooling": cm.pooling,
         "varying_years": environment.varying or "none", "birth_covariates": list(environment.births),
         "death_covariates": list(environment.deaths),
-        "target_accept": float(target_accept), "init": DEFAULT_INIT, "start": start.summary(),
+        "target_accept": float(target_accept), "accept_jumps": bool(accept_jumps), "init": DEFAULT_INIT, "start": start.summary(),
         "n_predictive": int(predictive.sizes["chain"] * predictive.sizes["draw"]),
         "n_prior": int(n_prior),
         "data_scale": {"time_scale": cm.scale.time_scale, "count_scale": cm.scale.count_scale,
@@ -253,6 +294,16 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
                      settings=settings, diagnostics=diagnostics,
                      cap_check=cap_check, messages=messages, model=cm, timing=timing,
                      quadrature_check=quadrature)
+
+
+def _largest_count_place(data: CountData) -> str | None:
+    """Where the largest count is in the source ("c.csv line 3"), for messages."""
+    for s in data.series:
+        times, counts, rows = s.observed("max")
+        hit = np.flatnonzero(counts == data.max_count)
+        if hit.size and rows[hit[0]] > 0:
+            return f"{data.source} {s.row_kind} {int(rows[hit[0]])}"
+    return None
 
 
 # --------------------------------------------------------------------------- comparison

@@ -23,6 +23,7 @@ unlikely (a series in the thousands with twofold changes, under rates of a few t
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -299,6 +300,8 @@ class StartPoint:
         chain_points: one start per chain: the start jittered by CHAIN_JITTER, each finite.
         data: the start from the counts (estimates, and what was clipped into the priors).
         tried: [(source, log density)] of every candidate evaluated, in order.
+        gradient_seconds: wall time of one evaluation of the gradient at the start (for the
+            estimate of the sampling time).
     """
 
     point: dict[str, np.ndarray]
@@ -308,6 +311,7 @@ class StartPoint:
     chain_points: list[dict[str, np.ndarray]]
     data: DataStart
     tried: list[tuple[str, float]]
+    gradient_seconds: float = float("nan")
 
     def summary(self) -> dict[str, Any]:
         """A JSON-ready record for the run's settings: source, log density, parameters used."""
@@ -326,6 +330,7 @@ class _Density:
         self._terms = model.compile_fn([t.sum() for t in model.logp(factors, sum=False)],
                                        inputs=model.value_vars, on_unused_input="ignore")
         self._grad: Any = None
+        self.gradient_seconds = float("nan")   # of the last gradient evaluated
 
     def terms(self, point: dict[str, np.ndarray]) -> dict[str, float]:
         with np.errstate(all="ignore"):   # overflow shows as inf or nan, not as an error
@@ -333,8 +338,11 @@ class _Density:
 
     def gradient_finite(self, point: dict[str, np.ndarray]) -> bool:
         self._grad = self._grad or self.model.compile_dlogp()
+        t0 = time.perf_counter()
         with np.errstate(all="ignore"):
-            return bool(np.all(np.isfinite(self._grad(point))))
+            finite = bool(np.all(np.isfinite(self._grad(point))))
+        self.gradient_seconds = time.perf_counter() - t0
+        return finite
 
 
 def _total(terms: dict[str, float]) -> float:
@@ -405,7 +413,8 @@ def find_start(cm: CountModel, *, chains: int = 1, seed: int = 0) -> StartPoint:
         trials = (_jittered(point, CHAIN_JITTER / 2 ** a, rng) for a in range(4))
         chain_points.append(next((p for p in trials if math.isfinite(_total(density.terms(p)))), point))
     return StartPoint(point=point, source=label, log_density=_total(terms), terms=terms,
-                      chain_points=chain_points, data=data, tried=[(s, _total(t)) for s, _, t in evaluated])
+                      chain_points=chain_points, data=data, tried=[(s, _total(t)) for s, _, t in evaluated],
+                      gradient_seconds=density.gradient_seconds)
 
 
 # --------------------------------------------------------------------------- why no start

@@ -6,7 +6,9 @@ A settings file has the tables
                 target_accept (NUTS; default 0.95, high because birth and death rates are
                 strongly correlated in the posterior and lower values give divergences),
                 varying_years ("none", "births" or "births_and_deaths": good and bad years
-                move every animal's births, or births and deaths, together)
+                move every animal's births, or births and deaths, together), accept_jumps
+                (fit counts that no birth–death process the priors allow could make, e.g. a
+                real boom, instead of stopping at them as a likely typing slip)
     [covariates]  file (CSV: time, [site], one column per covariate), births and deaths
                 (lists of column names acting on each), future (a table: the value of
                 every covariate used in forecasts)
@@ -29,7 +31,7 @@ from tallyfit.infer.scenarios import Scenario, scenarios_from_table
 
 _FIT_KEYS = {"rates": str, "immigration": bool, "chains": int, "draws": int, "tune": int,
              "seed": int, "max_size": int, "detection": (float, int, str), "pooling": bool,
-             "target_accept": float, "varying_years": str, "time_unit": str}
+             "target_accept": float, "varying_years": str, "time_unit": str, "accept_jumps": bool}
 _COVARIATE_KEYS = {"file": str, "births": list, "deaths": list, "future": dict}
 #: Values of [fit] varying_years.
 VARYING_YEARS = ("none", "births", "births_and_deaths")
@@ -69,6 +71,7 @@ class RunSettings:
     death_covariates: tuple[str, ...] = ()
     future_covariates: dict[str, float] = field(default_factory=dict)
     time_unit: str = "auto"
+    accept_jumps: bool = False
 
     def with_options(self, **options: Any) -> "RunSettings":
         """A copy with the given options replaced (None values are ignored)."""

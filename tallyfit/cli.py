@@ -48,6 +48,9 @@ def _parser() -> argparse.ArgumentParser:
                         help="covariate CSV (time, [site], one column per covariate); which covariates act "
                              "on births or deaths, and their future values, go in the --config file's "
                              "[covariates] table")
+        sp.add_argument("--accept-jumps", dest="accept_jumps", action="store_true", default=None,
+                        help="fit counts that change more than any birth–death process the priors allow "
+                             "(by default such a count stops the run as a likely typing slip)")
         imm = sp.add_mutually_exclusive_group()
         imm.add_argument("--immigration", dest="immigration", action="store_true", default=None,
                          help="include an immigration rate (default)")
@@ -170,6 +173,7 @@ def _settings_from_args(args: argparse.Namespace, base: "RunSettings | None" = N
                                  varying_years=(None if getattr(args, "varying_years", None) is None
                                                 else args.varying_years.replace("-", "_")),
                                  time_unit=getattr(args, "time_unit", None),
+                                 accept_jumps=getattr(args, "accept_jumps", None),
                                  covariates_file=(None if getattr(args, "covariates_file", None) is None
                                                   else str(args.covariates_file.resolve())))
 

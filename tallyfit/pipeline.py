@@ -162,7 +162,8 @@ def _fit_and_write(counts: str | Path | CountData, settings: RunSettings, out: s
                             seed=settings.seed, cap=settings.max_size, detection=settings.detection,
                             priors=settings.priors or None, pooling=settings.pooling, progressbar=progress,
                             cores=cores, target_accept=settings.target_accept,
-                            credible_level=settings.credible_level, environment=environment)
+                            credible_level=settings.credible_level, environment=environment,
+                            accept_jumps=settings.accept_jumps, unit=unit, log=log)
     # our own warnings (e.g. detection estimated without replicate surveys) go to the report
     messages = [str(w.message) for w in caught if w.category.__module__.startswith("tallyfit")]
     messages += [m for m in result.messages if m not in messages]
