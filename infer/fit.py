@@ -43,8 +43,9 @@ from tallyfit.infer.model import NO_ENVIRONMENT, CountModel, Environment, build_
 from tallyfit.infer.predictive import observed_data_group, simulate_posterior_counts
 from tallyfit.infer.sampling import DEFAULT_INIT, sample_model, sample_prior, seed_streams
 from tallyfit.infer.observation import default_cap, normalise_detection
-from tallyfit.infer.screening import (LEAPFROG_STEPS, check_changes, describe_duration, estimate_memory,
-                                      estimate_sampling_time, require_memory_for_fit)
+from tallyfit.infer.cost import (LEAPFROG_STEPS, describe_duration, estimate_memory, estimate_sampling_time,
+                                 require_memory_for_fit)
+from tallyfit.infer.screening import check_changes
 from tallyfit.infer.start import find_start
 from tallyfit.infer.units import TimeUnit
 
@@ -170,7 +171,7 @@ def fit_counts(data: CountData, family: str | RateFamily = "logistic", *, chains
             sampling); a sampler that cannot start or runs out of memory.
         ImplausibleCountsError: counts the family's priors do not allow (an InputError;
             before the model is built), unless ``accept_jumps``.
-        FitTooLargeError: the fit would not fit in memory (an InputError; before the model
+        FitTooLargeError (infer.cost): the fit would not fit in memory (an InputError; before the model
             is built).
         SamplerError: any other failure inside the sampler (an internal error), in plain words.
     """

@@ -23,10 +23,10 @@ import scipy.linalg
 from tallyfit.cli import main
 from tallyfit.infer.counts import CountData
 from tallyfit.infer.families import get_family
-from tallyfit.infer import screening
-from tallyfit.infer.screening import (FitTooLargeError, ImplausibleCountsError, change_chances, check_changes,
-                                      describe_duration, estimate_memory, estimate_sampling_time,
-                                      implausible_changes, require_memory_for_fit)
+from tallyfit.infer import cost, screening
+from tallyfit.infer.cost import (FitTooLargeError, describe_duration, estimate_memory, estimate_sampling_time,
+                                 require_memory_for_fit)
+from tallyfit.infer.screening import ImplausibleCountsError, change_chances, check_changes, implausible_changes
 
 
 def _point_priors(values: dict[str, float]) -> dict[str, dict]:
@@ -158,7 +158,7 @@ def test_memory_estimate_and_refusal():
     assert small.fits and not big.fits
     # linear in the cap and in the processes
     assert estimate_memory(2 * 10 ** 8, processes=3, available=1).needed_bytes - big.needed_bytes == \
-        3 * screening.BYTES_PER_SIZE * 10 ** 8
+        3 * cost.BYTES_PER_SIZE * 10 ** 8
     require_memory_for_fit(small, largest_count=800)
     with pytest.raises(FitTooLargeError) as err:
         require_memory_for_fit(big, largest_count=9 * 10 ** 7, where="c.csv line 7", cap_given=False)
@@ -172,7 +172,7 @@ def test_memory_estimate_and_refusal():
 def test_time_estimate_words(monkeypatch):
     low, mid, high = estimate_sampling_time(0.01, chains=4, draws=1000, tune=1000, processes=2)
     # two rounds of two chains, 2000 iterations each, LEAPFROG_STEPS evaluations per iteration
-    assert (low, mid, high) == pytest.approx(tuple(0.01 * k * 4000 for k in screening.LEAPFROG_STEPS))
+    assert (low, mid, high) == pytest.approx(tuple(0.01 * k * 4000 for k in cost.LEAPFROG_STEPS))
     assert describe_duration(40) == "40 seconds" and describe_duration(720) == "12 minutes"
     assert describe_duration(3.5 * 3600) == "3.5 hours"
 
@@ -180,7 +180,7 @@ def test_time_estimate_words(monkeypatch):
 def test_fit_says_how_long_sampling_will_take(monkeypatch):
     from tallyfit.infer.fit import fit_counts
 
-    monkeypatch.setattr(screening, "LEAPFROG_STEPS", (10 ** 6,) * 3)   # as if every evaluation were slow
+    monkeypatch.setattr(cost, "LEAPFROG_STEPS", (10 ** 6,) * 3)   # as if every evaluation were slow
     said: list[str] = []
     data = CountData.single(np.arange(2000.0, 2008.0), [12, 14, 13, 17, 15, 18, 16, 19])
     fit_counts(data, get_family("linear", immigration=False), chains=1, draws=10, tune=10, seed=1,
