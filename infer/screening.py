@@ -251,13 +251,12 @@ def change_chances(data: CountData, family: str | RateFamily, *, priors: Mapping
     hi_idx = np.clip(np.searchsorted(grid, hi_level, side="left"), 0, grid.size - 1)
     hi_idx = np.maximum(hi_idx, lo_idx)
 
-    births_x = deaths_x = None
-    if environment.births:
-        births_x = interval_design([s for s in data.series if s.surveyed_times.size >= 2], environment.covariates,
-                                   environment.births, what="births")
-    if environment.deaths:
-        deaths_x = interval_design([s for s in data.series if s.surveyed_times.size >= 2], environment.covariates,
-                                   environment.deaths, what="deaths")
+    # covariate rows per interval, in the same site-by-site order as the intervals above
+    surveyed = [s for s in data.series if s.surveyed_times.size >= 2]
+    births_x = (interval_design(surveyed, environment.covariates, environment.births, what="births")
+                if environment.births else None)
+    deaths_x = (interval_design(surveyed, environment.covariates, environment.deaths, what="deaths")
+                if environment.deaths else None)
 
     rng = np.random.default_rng(_SEED)
     total = np.zeros(T)
@@ -341,20 +340,23 @@ def implausible_changes(data: CountData, family: str | RateFamily, *, priors: Ma
     alone = (table["chance"] < JUMP_LIMIT).to_numpy()
     both = (table["back_chance"] < JUMP_LIMIT).to_numpy()
     out = []
-    for i in range(len(table)):
+    i = 0
+    while i < len(table):
+        # a change flagged alone, else one flagged with the next interval that undoes it (which
+        # is then not reported again)
         as_pair = both[i] and not alone[i] and not (i + 1 < len(table) and alone[i + 1])
-        if not (alone[i] or as_pair) or (as_pair and i > 0 and out and out[-1].after_time == table["before_time"][i]):
-            continue
-        row = table.iloc[i]
-        nxt = table.iloc[i + 1] if as_pair else None
-        out.append(ImplausibleChange(site=str(row["site"]) if data.n_sites > 1 else None, time=float(row["time"]),
-                                     count=int(row["count"]), before_time=float(row["before_time"]),
-                                     before_count=int(row["before_count"]),
-                                     after_time=float(nxt["time"]) if as_pair else None,
-                                     after_count=int(nxt["count"]) if as_pair else None,
-                                     chance=float(row["back_chance"] if as_pair else row["chance"]),
-                                     line=None if row["line"] is None or pd.isna(row["line"]) else int(row["line"]),
-                                     row_kind=str(row["row_kind"])))
+        if alone[i] or as_pair:
+            row = table.iloc[i]
+            nxt = table.iloc[i + 1] if as_pair else None
+            out.append(ImplausibleChange(
+                site=str(row["site"]) if data.n_sites > 1 else None, time=float(row["time"]),
+                count=int(row["count"]), before_time=float(row["before_time"]),
+                before_count=int(row["before_count"]), after_time=float(nxt["time"]) if as_pair else None,
+                after_count=int(nxt["count"]) if as_pair else None,
+                chance=float(row["back_chance"] if as_pair else row["chance"]),
+                line=None if row["line"] is None or pd.isna(row["line"]) else int(row["line"]),
+                row_kind=str(row["row_kind"])))
+        i += 2 if as_pair else 1
     return out
 
 

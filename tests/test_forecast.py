@@ -12,7 +12,7 @@ import scipy.linalg as sla
 import xarray as xr
 from scipy import stats
 
-from reference import generator
+from reference import generator, gillespie_years
 from tallyfit.chain import EnvironmentalChain
 from tallyfit.infer.families import get_family
 from tallyfit.infer.forecast import forecast_rows, pmf_quantiles
@@ -47,24 +47,6 @@ def test_one_step_forecast_is_the_posterior_average_of_expm_rows():
     np.testing.assert_array_equal(ds["forecast_time"].sel(site="pond").values, [2025.0, 2026.0])
 
 
-def _gillespie_years(birth, death, sigma, start, years, rng):
-    """Size after each whole year; each year draws ε ~ N(0, σ²) and scales the births (not the
-    immigration) by exp(ε − σ²/2); exact event by event (Gillespie 1977, J. Phys. Chem. 81:2340)."""
-    n, out = start, []
-    for _ in range(years):
-        s = math.exp(sigma * rng.standard_normal() - sigma ** 2 / 2)
-        t = 0.0
-        while True:
-            up = birth[0] + (birth[n] - birth[0]) * s if n < N else 0.0
-            down = death[n]
-            t += rng.exponential(1 / (up + down))
-            if t > 1:
-                break
-            n += 1 if rng.random() < up / (up + down) else -1
-        out.append(n)
-    return out
-
-
 @pytest.mark.parametrize("sigma", [0.0, 0.4])
 def test_multi_step_forecast_matches_simulation(sigma):
     n = np.arange(N + 1.0)
@@ -73,7 +55,7 @@ def test_multi_step_forecast_matches_simulation(sigma):
     rows = forecast_rows(birth, death, np.array([25]), 3, 1.0, annual)[0]
     assert rows.shape == (3, N + 1) and np.allclose(rows.sum(axis=1), 1, atol=1e-8)
     rng = np.random.default_rng(11)
-    sims = np.array([_gillespie_years(birth, death, sigma, 25, 3, rng) for _ in range(4000)])
+    sims = np.array([gillespie_years(birth, death, sigma, 25, 3, rng) for _ in range(4000)])
     for k in range(3):
         mean = float(rows[k] @ n)
         sd = math.sqrt(float(rows[k] @ n ** 2) - mean ** 2)
